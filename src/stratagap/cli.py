@@ -1,0 +1,245 @@
+"""Command line: ``stratagap analyze`` and ``stratagap demo``.
+
+A thin layer: it parses arguments into an :class:`~stratagap.spec.AnalysisSpec` (a TOML file
+given with ``--spec`` first, command-line flags over it), calls :func:`stratagap.analyze`, and
+renders the result. Exit codes: 0 ok, 2 bad input or arguments (one line on stderr, no
+traceback), 1 internal error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import hashlib
+import os
+import sys
+import traceback
+from pathlib import Path
+
+from ._errors import InputError
+
+__all__ = ["main"]
+
+DEMO_FOLDER = "stratagap-demo"
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # one line, exit code 2, through the same path as other errors
+        raise InputError(f"{message}; see `stratagap {self.prog.split()[-1]} --help`"
+                         if " " in self.prog else f"{message}; see `stratagap --help`")
+
+
+# (flag, spec field, type, help). Defaults live in AnalysisSpec only, so there is one source.
+_OPTIONS = [
+    ("--exposure", "exposure", str, "column holding the two groups"),
+    ("--outcome", "outcome", str, "outcome column (binary or numeric)"),
+    ("--covariates", "covariates", str, "comma-separated measured confounders"),
+    ("--formula", "formula", str, "score-model right-hand side in Wilkinson notation, e.g. "
+     "'age + I(age**2) + C(role)'; used for balance checks too"),
+    ("--exposed-value", "exposed_value", str, "value of --exposure that marks the exposed group"),
+    ("--outcome-type", "outcome_type", str, "auto (default), binary or continuous"),
+    ("--outcome-event", "outcome_event", str, "value of a two-valued outcome counted as the event"),
+    ("--estimand", "estimand", str, "ate (default) or att"),
+    ("--strata", "n_strata", int, "number of propensity-score strata (default 5)"),
+    ("--strata-method", "strata_method", str, "quantile (default) or adaptive"),
+    ("--strata-column", "strata_column", str, "use this column's groups (e.g. matched sets) as strata"),
+    ("--min-per-group", "min_per_group", int, "merge adjacent strata with fewer units of a group (default 3)"),
+    ("--trim", "trim", str, "overlap rule: auto (default, follows the estimand), none, common, crump"),
+    ("--score-model", "score_model", str, "logistic (default) or boosting (cross-fitted)"),
+    ("--folds", "folds", int, "cross-fitting folds for --score-model boosting (default 5)"),
+    ("--statistic", "statistic", str, "adjusted (default), difference, studentized or sum"),
+    ("--alternative", "alternative", str, "two-sided (default), greater or less"),
+    ("--engine", "engine", str, "auto (default), monte_carlo, exact or normal"),
+    ("--resamples", "resamples", str, "permutation resamples (default 10000)"),
+    ("--seed", "seed", str, "random seed (default 2026)"),
+    ("--alpha", "alpha", str, "significance level (default 0.05)"),
+    ("--measure", "measure", str, "binary outcomes: difference (default), rr or or"),
+    ("--gamma-grid", "gamma_grid", str, "comma-separated Γ values for the sensitivity curve"),
+    ("--missing", "missing", str, "drop (default), error or indicator"),
+    ("--negative-control", "negative_control", str, "an outcome the exposure cannot affect"),
+    ("--truncate-weights", "truncate_weights", str, "truncate IP weights at percentiles LO,HI"),
+    ("--batch-size", "batch_size", str, "resamples per batch (memory); results do not depend on it"),
+]
+
+
+def _build_parser() -> argparse.ArgumentParser:
+    parser = _Parser(prog="stratagap", description=(
+        "Does the gap between two non-randomized groups survive adjustment for measured "
+        "confounders? Observational evidence only; not medical advice."))
+    sub = parser.add_subparsers(dest="command", parser_class=_Parser)
+    analyze = sub.add_parser("analyze", help="analyse a data file")
+    analyze.add_argument("data", nargs="?", help="CSV, Parquet, Stata (.dta) or SAS (.xpt) file")
+    analyze.add_argument("--spec", help="TOML analysis file; flags given here override it")
+    for flag, dest, typ, text in _OPTIONS:
+        analyze.add_argument(flag, dest=dest, type=str, default=None, help=text)
+    analyze.add_argument("--censoring-weights", dest="censoring_weights", action="store_const",
+                         const=True, default=None,
+                         help="weight complete cases by inverse probability of an observed outcome")
+    _add_output_options(analyze)
+    demo = sub.add_parser("demo", help="simulate the invented shift-work study and analyse it")
+    demo.add_argument("--seed", default="2026", help="seed of the simulated data and the analysis")
+    demo.add_argument("--n", default="3000", help="number of simulated staff (default 3000)")
+    _add_output_options(demo, default_out=DEMO_FOLDER)
+    return parser
+
+
+def _add_output_options(p, default_out=None):
+    p.add_argument("--out", default=default_out, help="folder for results.json, CSV tables and the report")
+    p.add_argument("--overwrite", action="store_true", help="replace files in a non-empty --out folder")
+    p.add_argument("--quiet", action="store_true", help="print nothing but errors")
+    p.add_argument("--format", default="text", choices=None, help="stdout format: text (default) or json")
+
+
+def _progress(quiet: bool):
+    if quiet or not sys.stderr.isatty():
+        return None, None
+    from tqdm import tqdm
+    bar = tqdm(total=0, desc="resampling", unit="resample", file=sys.stderr, leave=False)
+
+    def update(done, total):
+        if bar.total != total:
+            bar.reset(total=total)
+        bar.n = done
+        bar.refresh()
+    return update, bar
+
+
+def _sha256(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def _spec_options(args) -> dict:
+    from .spec import load_spec_file
+    options = load_spec_file(args.spec) if args.spec else {}
+    for _flag, dest, _typ, _text in _OPTIONS:
+        value = getattr(args, dest)
+        if value is not None:
+            options[dest] = value
+    if args.censoring_weights:
+        options["censoring_weights"] = True
+    if args.data:
+        options["data_path"] = args.data
+    for flag, dest in (("--exposure", "exposure"), ("--outcome", "outcome")):
+        if not options.get(dest):
+            raise InputError(f"`{flag}` is required (on the command line or in the --spec file)")
+    if not options.get("data_path"):
+        raise InputError("no data file given: pass DATA (a CSV, Parquet, .dta or .xpt file) or `data` in --spec")
+    return options
+
+
+def _check_format(fmt):
+    if fmt not in ("text", "json"):
+        raise InputError(f"`--format` must be text or json; got {fmt!r}")
+
+
+def _run_analyze(args) -> int:
+    from .data import read_table
+    from .output import prepare_folder, write_result
+    from .pipeline import analyze
+    from .summary import render_summary
+
+    _check_format(args.format)
+    options = _spec_options(args)
+    path = Path(options.pop("data_path"))
+    folder = prepare_folder(args.out, inputs=[path, args.spec], overwrite=args.overwrite) \
+        if args.out else None
+    table = read_table(path)
+    progress, bar = _progress(args.quiet)
+    source = {"file": path.name, "sha256": _sha256(path), "rows": int(len(table)),
+              "command": "stratagap " + " ".join(sys.argv[1:])}
+    try:
+        result = analyze(table, progress=progress, source=source,
+                         exposure=options.pop("exposure"), outcome=options.pop("outcome"),
+                         covariates=options.pop("covariates", None), data_path=str(path),
+                         **options)
+    finally:
+        if bar is not None:
+            bar.close()
+    if folder is not None:
+        write_result(result, folder)
+    _print(result, args)
+    return 0
+
+
+def _run_demo(args) -> int:
+    from .demo import make_shift_work_data, true_effects
+    from .output import prepare_folder, write_atomic, write_result
+    from .pipeline import analyze
+    from .summary import render_summary
+    from .spec import AnalysisSpec
+
+    _check_format(args.format)
+    seed = AnalysisSpec(exposure="x", outcome="y", covariates="z", seed=args.seed).seed
+    try:
+        n = int(args.n)
+    except ValueError:
+        raise InputError(f"`--n` must be a whole number from 200 to 1,000,000; got {args.n!r}") from None
+    if not 200 <= n <= 1_000_000:
+        raise InputError(f"`--n` must be a whole number from 200 to 1,000,000; got {n:,}")
+    folder = prepare_folder(args.out, overwrite=args.overwrite, demo=True)
+    data = make_shift_work_data(n=n, seed=seed)
+    public = data.drop(columns=["_true_effect"])
+    csv_path = folder / "shift_work.csv"
+    write_atomic(csv_path, public.to_csv(index=False))
+    progress, bar = _progress(args.quiet)
+    source = {"file": csv_path.name, "sha256": _sha256(csv_path), "rows": int(len(public)),
+              "command": "stratagap " + " ".join(sys.argv[1:]), "invented": True}
+    try:
+        result = analyze(public, exposure="shift", exposed_value="nights", outcome="systolic_bp",
+                         covariates=["age", "bmi", "smoker", "role"],
+                         negative_control="hearing_db", seed=seed, progress=progress,
+                         source=source)
+    finally:
+        if bar is not None:
+            bar.close()
+    ids = public["staff_id"].to_numpy()[result.arrays["row_ids"][result.arrays["used"]]]
+    truth = true_effects(data, ids)
+    write_result(result, folder)
+    write_atomic(folder / "truth.json", __import__("json").dumps(truth, indent=2) + "\n")
+    _print(result, args, truth=truth)
+    if not args.quiet and args.format == "text":
+        print(f"Files written to {folder}")
+    return 0
+
+
+def _print(result, args, truth=None):
+    from .summary import render_summary
+    if args.quiet:
+        return
+    if args.format == "json":
+        sys.stdout.write(result.to_json())
+    else:
+        sys.stdout.write(render_summary(result.to_dict(), truth=truth))
+
+
+def main(argv=None) -> int:
+    """Entry point; returns the exit code."""
+    parser = _build_parser()
+    try:
+        args = parser.parse_args(argv)
+        if args.command is None:
+            parser.print_help()
+            return 2
+        if args.command == "analyze":
+            return _run_analyze(args)
+        return _run_demo(args)
+    except InputError as exc:
+        message = " ".join(str(exc).split())
+        print(f"stratagap: error: {message}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("stratagap: interrupted", file=sys.stderr)
+        return 130
+    except Exception as exc:  # an internal error: say so in one line; details on request
+        if os.environ.get("STRATAGAP_DEBUG"):
+            traceback.print_exc()
+        print(f"stratagap: internal error: {type(exc).__name__}: {' '.join(str(exc).split())} "
+              "(set STRATAGAP_DEBUG=1 for details; please report it)", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

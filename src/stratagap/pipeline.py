@@ -1,0 +1,266 @@
+"""`analyze`: the whole pipeline, from a table to an :class:`AnalysisResult`.
+
+data -> scores -> overlap -> strata -> balance -> permutation test -> effects -> cross-checks
+-> heterogeneity -> sensitivity -> verdict. Each stage lives in its own module; this one only
+wires them together, in one direction, and records every warning on the result.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from . import balance as _balance
+from . import crosscheck as _crosscheck
+from . import data as _data
+from . import effects as _effects
+from . import heterogeneity as _heterogeneity
+from . import overlap as _overlap
+from . import permutation as _permutation
+from . import scores as _scores
+from . import sensitivity as _sensitivity
+from . import strata as _strata
+from ._errors import InputError, StratagapWarning
+from .result import AnalysisResult, CAUTIONS, versions
+from .spec import AnalysisSpec
+from .verdict import write_verdict
+
+__all__ = ["analyze"]
+
+
+def analyze(table, *, exposure: str, outcome: str, covariates=None, progress=None,
+            source: dict | None = None, **options) -> AnalysisResult:
+    """Adjusted, permutation-tested comparison of an outcome between two non-randomized groups.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame or path-like
+        The data: one row per person. A path is read with :func:`stratagap.data.read_table`.
+    exposure, outcome : str
+        Column names. The exposure must have two values (see ``exposed_value``).
+    covariates : list of str or comma-separated str, optional
+        Measured confounders for the propensity score, the balance checks and the covariance
+        adjustment. Optional when ``formula`` is given.
+    progress : callable(done, total), optional
+        Called while resampling (the CLI passes a progress bar).
+    source : dict, optional
+        Description of the input (file name, SHA-256), stored on the result.
+    **options
+        Any other field of :class:`stratagap.spec.AnalysisSpec` (``estimand="ate"``,
+        ``n_strata=5``, ``resamples=10000``, ``seed=2026``, ``alpha=0.05``, ...).
+
+    Returns
+    -------
+    AnalysisResult
+        Frozen; ``to_dict()`` is what ``results.json`` holds.
+    """
+    started = time.perf_counter()
+    if isinstance(table, (str, Path)):
+        source = source or {"file": str(table)}
+        table = _data.read_table(table)
+    if not isinstance(table, pd.DataFrame):
+        raise InputError(f"`table` must be a pandas DataFrame or a file path; got {type(table).__name__}")
+    spec = AnalysisSpec(exposure=exposure, outcome=outcome, covariates=covariates, **options)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", StratagapWarning)
+        parts = _run(table, spec, progress)
+    seen, recorded = set(), []
+    for w in caught:
+        if not issubclass(w.category, StratagapWarning):
+            continue
+        key = (w.category.__name__, str(w.message))
+        if key not in seen:
+            seen.add(key)
+            recorded.append({"kind": w.category.__name__, "message": str(w.message)})
+    run = {"seconds": round(time.perf_counter() - started, 3), "versions": versions()}
+    return AnalysisResult(spec=spec, source=source or {}, warnings=tuple(recorded),
+                          cautions=CAUTIONS, run=run, **parts)
+
+
+def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
+    prepared = _data.prepare(
+        table, exposure=spec.exposure, outcome=spec.outcome,
+        covariates=list(spec.covariates) if spec.covariates else None,
+        exposed_value=spec.exposed_value, outcome_type=spec.outcome_type,
+        outcome_event=spec.outcome_event, formula=spec.formula, missing=spec.missing,
+        strata_column=spec.strata_column, negative_control=spec.negative_control,
+        censoring_weights=spec.censoring_weights)
+    binary = prepared.outcome_type == "binary"
+    if spec.measure != "difference" and not binary:
+        raise InputError(f"`--measure {spec.measure}` needs a binary outcome; "
+                         f"{spec.outcome!r} is continuous: use --measure difference")
+    crude = _effects.crude(prepared.y, prepared.t, prepared.outcome_type, alpha=spec.alpha)
+
+    propensity = _scores.fit_propensity(prepared.X, prepared.t, prepared.design_names,
+                                        method=spec.score_model, folds=spec.folds, seed=spec.seed)
+    overlap = _overlap.apply_overlap(propensity.score, prepared.t, estimand=spec.estimand,
+                                     rule=spec.trim)
+    keep = np.asarray(overlap.keep, dtype=bool)
+    user = None if prepared.user_strata is None else prepared.user_strata[keep]
+    strata = _strata.make_strata(propensity.score[keep], prepared.t[keep], estimand=spec.estimand,
+                                 n_strata=spec.n_strata, method=spec.strata_method,
+                                 min_per_group=spec.min_per_group, user_labels=user,
+                                 logit=propensity.logit[keep])
+    # Rows analysed: kept by the overlap rule and in a stratum holding both groups.
+    used = np.flatnonzero(keep)[np.asarray(strata.labels) >= 0]
+    labels = np.asarray(strata.labels)[np.asarray(strata.labels) >= 0]
+    t, y, X = prepared.t[used], prepared.y[used], prepared.X[used]
+    population = overlap.estimand_label
+
+    terms = [dataclasses.replace(term, values=None if term.values is None else term.values[used])
+             for term in prepared.terms]
+    weights = _strata.unit_weights(labels, t, spec.estimand)
+    balance = _balance.balance_table(X, t, terms, weights_after=weights,
+                                     logit=propensity.logit[used])
+
+    tests = _tests(spec, y, t, X, labels, binary, progress)
+    headline_measure = "difference" if spec.measure == "difference" else spec.measure
+    adjusted = _effects.stratified_regression(
+        y, t, X, labels, estimand=spec.estimand, measure=headline_measure, alpha=spec.alpha,
+        interaction_min_extra=spec.interaction_min_extra, population=population)
+    plain = _effects.plain_stratified_difference(y, t, labels, estimand=spec.estimand,
+                                                 alpha=spec.alpha)
+    constant = None
+    if not binary:
+        constant = _effects.constant_effect(y, t, X, labels, estimand=spec.estimand,
+                                            alpha=spec.alpha, resamples=spec.resamples,
+                                            seed=spec.seed, engine=spec.engine,
+                                            batch_size=spec.batch_size)
+    mh = _effects.mantel_haenszel(y, t, labels, alpha=spec.alpha) if binary else None
+    risk_ratio = None
+    if binary:
+        risk_ratio = adjusted if headline_measure == "rr" else _effects.stratified_regression(
+            y, t, X, labels, estimand=spec.estimand, measure="rr", alpha=spec.alpha,
+            interaction_min_extra=spec.interaction_min_extra, population=population)
+
+    cross = _crosscheck.cross_checks(y, t, X, estimand=spec.estimand, alpha=spec.alpha,
+                                     outcome_type=prepared.outcome_type,
+                                     truncate=spec.truncate_weights)
+    per = adjusted.per_stratum
+    heterogeneity = {"cochran_q": _heterogeneity.cochran_q(
+        [s["estimate"] for s in per], [s["se"] for s in per]).to_dict()}
+    if binary:
+        heterogeneity["breslow_day"] = _heterogeneity.breslow_day(y, t, labels).to_dict()
+
+    sensitivity = _sensitivity_block(spec, prepared, tests, adjusted, risk_ratio, y, t, X, labels,
+                                     used, binary)
+    negative = _negative_control(spec, prepared, used, t, X, labels)
+    flow = _flow(prepared, overlap, strata, used)
+    parts = dict(
+        prepared_summary=_prepared_summary(prepared, used), flow=flow, propensity=propensity,
+        overlap=overlap, strata=strata, balance=balance, tests=tests, crude=crude,
+        adjusted=adjusted, plain=plain, constant_effect=constant, mantel_haenszel=mh,
+        risk_ratio=risk_ratio, cross_checks=cross, heterogeneity=heterogeneity,
+        sensitivity=sensitivity, negative_control=negative,
+        arrays={"score": propensity.score, "t_all": prepared.t, "keep": keep, "used": used,
+                "labels": labels, "t": t, "y": y,
+                "row_ids": getattr(prepared, "row_ids", None)},
+    )
+    parts["verdict"] = write_verdict(spec=spec, **{k: parts[k] for k in (
+        "crude", "adjusted", "tests", "balance", "sensitivity", "cross_checks",
+        "negative_control", "overlap")})
+    return parts
+
+
+def _tests(spec, y, t, X, labels, binary, progress) -> dict:
+    """The default test, its studentized companion and (binary outcomes) the MH sum test."""
+    common = dict(estimand=spec.estimand, alternative=spec.alternative, engine=spec.engine,
+                  resamples=spec.resamples, seed=spec.seed, batch_size=spec.batch_size)
+    if spec.statistic in ("adjusted", "studentized"):
+        values = _permutation.residualize(y, X, labels)  # Rosenbaum 2002: fixed under the sharp null
+    else:
+        values = y
+    name = {"adjusted": "mean_difference", "difference": "mean_difference",
+            "studentized": "studentized", "sum": "sum"}[spec.statistic]
+    main = _permutation.stratified_test(values, t, labels, statistic=name, progress=progress,
+                                        **common)
+    out = {"main": main, "values": values, "adjusted": spec.statistic in ("adjusted", "studentized")}
+    if spec.statistic == "adjusted":
+        out["studentized"] = _permutation.stratified_test(values, t, labels,
+                                                          statistic="studentized", **common)
+    if binary and spec.statistic != "sum":
+        out["sum"] = _permutation.stratified_test(y, t, labels, statistic="sum", **common)
+    return out
+
+
+def _sensitivity_block(spec, prepared, tests, adjusted, risk_ratio, y, t, X, labels, used,
+                       binary) -> dict:
+    main = tests["main"]
+    direction = "greater" if main.statistic >= 0 else "less"
+    level = spec.alpha / 2 if spec.alternative == "two-sided" else spec.alpha
+    statistic = "sum" if spec.statistic == "sum" else "mean_difference"
+    bounds = _sensitivity.gamma_bounds(tests["values"], t, labels, estimand=spec.estimand,
+                                       statistic=statistic, direction=direction,
+                                       gammas=spec.gamma_grid)
+    threshold = _sensitivity.sensitivity_value(tests["values"], t, labels, estimand=spec.estimand,
+                                               statistic=statistic, direction=direction,
+                                               alpha=level)
+    if binary:
+        rr = risk_ratio
+        e_value = _sensitivity.e_value(rr.estimate, rr.ci_low, rr.ci_high, measure="rr",
+                                       alpha=spec.alpha)
+    else:
+        sd = _pooled_sd(y, t)
+        e_value = _sensitivity.e_value(adjusted.estimate, adjusted.ci_low, adjusted.ci_high,
+                                       measure="difference", outcome_sd=sd, se=adjusted.se,
+                                       alpha=spec.alpha)
+    benchmarks = _sensitivity.covariate_benchmarks(
+        [dataclasses.replace(term, values=None if term.values is None else term.values[used])
+         for term in prepared.terms], X, y, t)
+    tipping = _sensitivity.tipping_grid(adjusted.estimate, adjusted.ci_low, adjusted.ci_high,
+                                        measure="difference", benchmarks=benchmarks)
+    return {"e_value": e_value, "bounds": bounds, "threshold": threshold,
+            "level": level, "direction": direction, "tipping": tipping}
+
+
+def _pooled_sd(y, t) -> float:
+    """Pooled within-group SD of the outcome (the E-value's standardizer for mean differences)."""
+    y1, y0 = y[t == 1], y[t == 0]
+    pooled = ((len(y1) - 1) * y1.var(ddof=1) + (len(y0) - 1) * y0.var(ddof=1)) / (len(y) - 2)
+    return float(np.sqrt(pooled))
+
+
+def _negative_control(spec, prepared, used, t, X, labels):
+    if prepared.negative_control is None:
+        return None
+    nc = prepared.negative_control[used]
+    ok = np.isfinite(nc)
+    if ok.sum() < 4:
+        raise InputError(f"`--negative-control` column {spec.negative_control!r} has fewer than 4 "
+                         "non-missing values among analysed rows; choose another column")
+    lab = labels[ok]
+    values = _permutation.residualize(nc[ok], X[ok], lab)
+    test = _permutation.stratified_test(values, t[ok], lab, estimand=spec.estimand,
+                                        alternative="two-sided", engine=spec.engine,
+                                        resamples=spec.resamples, seed=spec.seed,
+                                        batch_size=spec.batch_size)
+    est = _effects.stratified_regression(nc[ok], t[ok], X[ok], lab, estimand=spec.estimand,
+                                         measure="difference", alpha=spec.alpha,
+                                         interaction_min_extra=spec.interaction_min_extra)
+    return {"column": spec.negative_control, "n": int(ok.sum()), "estimate": est, "test": test,
+            "alarm": bool(test.p_value < spec.alpha)}
+
+
+def _flow(prepared, overlap, strata, used) -> dict:
+    flow = prepared.flow.to_dict()
+    flow["trimmed_by_group"] = dict(overlap.set_aside)
+    flow["strata_set_aside_by_group"] = dict(getattr(strata, "set_aside", {}) or {})
+    t_used = prepared.t[used]
+    flow["analysed_by_group"] = {"exposed": int(t_used.sum()),
+                                 "reference": int(len(t_used) - t_used.sum())}
+    flow["rows_analysed"] = int(len(used))
+    return flow
+
+
+def _prepared_summary(prepared, used) -> dict:
+    return {"outcome_type": prepared.outcome_type,
+            "exposure_levels": dict(prepared.exposure_levels),
+            "outcome_levels": getattr(prepared, "outcome_levels", None),
+            "covariates": list(prepared.covariates),
+            "design_columns": list(prepared.design_names),
+            "n_used": int(len(used))}

@@ -1,0 +1,209 @@
+"""The analysis specification: every choice that shapes a result, checked once, in one place.
+
+The CLI and a TOML analysis file both build an :class:`AnalysisSpec`; :func:`stratagap.analyze`
+takes the same fields as keywords. Every default is the one the documentation defends, and the
+spec is written into ``results.json`` so that a run can be reviewed and repeated.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import math
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from ._errors import InputError
+from ._rng import check_seed
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+__all__ = ["AnalysisSpec", "load_spec_file"]
+
+ESTIMANDS = ("ate", "att")
+ALTERNATIVES = ("two-sided", "greater", "less")
+ENGINES = ("auto", "monte_carlo", "exact", "normal")
+#: Test statistics. "adjusted" is the default: covariance-adjusted (residuals of an outcome
+#: model on the covariates with stratum effects, never the exposure), estimand-weighted
+#: stratified difference of means, a test of the sharp null (Rosenbaum 2002).
+STATISTICS = ("adjusted", "difference", "studentized", "sum")
+MEASURES = ("difference", "rr", "or")
+TRIM_RULES = ("auto", "none", "common", "crump")
+SCORE_MODELS = ("logistic", "boosting")
+STRATA_METHODS = ("quantile", "adaptive")
+MISSING_POLICIES = ("drop", "error", "indicator")
+OUTCOME_TYPES = ("auto", "binary", "continuous")
+MAX_RESAMPLES = 10_000_000
+
+
+@dataclass(frozen=True)
+class AnalysisSpec:
+    """All settings of one analysis. See ``docs/results.md`` for what each one changes."""
+
+    exposure: str
+    outcome: str
+    covariates: tuple[str, ...] | None = None
+    formula: str | None = None
+    exposed_value: str | None = None
+    outcome_type: str = "auto"
+    outcome_event: str | None = None
+    estimand: str = "ate"
+    n_strata: int = 5
+    strata_method: str = "quantile"
+    strata_column: str | None = None
+    min_per_group: int = 3
+    trim: str = "auto"
+    score_model: str = "logistic"
+    folds: int = 5
+    statistic: str = "adjusted"
+    alternative: str = "two-sided"
+    engine: str = "auto"
+    resamples: int = 10_000
+    seed: int = 2026
+    alpha: float = 0.05
+    measure: str = "difference"
+    gamma_grid: tuple[float, ...] = (1.0, 1.1, 1.25, 1.5, 1.75, 2.0, 2.5, 3.0, 4.0, 5.0)
+    missing: str = "drop"
+    censoring_weights: bool = False
+    negative_control: str | None = None
+    truncate_weights: tuple[float, float] | None = None
+    interaction_min_extra: int = 2
+    batch_size: int | None = None
+    data_path: str | None = field(default=None, compare=False)
+
+    def __post_init__(self):
+        _check(self)
+
+    def replace(self, **changes) -> "AnalysisSpec":
+        return dataclasses.replace(self, **changes)
+
+    def to_dict(self) -> dict:
+        out = dataclasses.asdict(self)
+        for key in ("covariates", "gamma_grid", "truncate_weights"):
+            if out[key] is not None:
+                out[key] = list(out[key])
+        return out
+
+
+def _choice(value, allowed, flag):
+    if value not in allowed:
+        raise InputError(f"`{flag}` must be one of {', '.join(allowed)}; got {value!r}")
+
+
+def _int_in(value, lo, hi, flag, hint=""):
+    if isinstance(value, bool) or not isinstance(value, int):
+        try:
+            as_float = float(value)
+        except (TypeError, ValueError):
+            raise InputError(f"`{flag}` must be a whole number; got {value!r}{hint}") from None
+        if not as_float.is_integer():
+            raise InputError(f"`{flag}` must be a whole number; got {value!r}{hint}")
+        value = int(as_float)
+    if not lo <= value <= hi:
+        raise InputError(f"`{flag}` must lie in [{lo:,}, {hi:,}]; got {value:,}{hint}")
+    return value
+
+
+def _check(spec: AnalysisSpec) -> None:
+    set_ = object.__setattr__
+    for name, flag in (("exposure", "--exposure"), ("outcome", "--outcome")):
+        value = getattr(spec, name)
+        if not isinstance(value, str) or not value:
+            raise InputError(f"`{flag}` names a column of the data file; got {value!r}")
+    if spec.covariates is not None:
+        covs = spec.covariates
+        if isinstance(covs, str):
+            covs = [c.strip() for c in covs.split(",") if c.strip()]
+        set_(spec, "covariates", tuple(covs))
+    if not spec.covariates and not spec.formula:
+        raise InputError("`--covariates` is empty: name the measured confounders (A,B,C) or give --formula")
+    if spec.exposed_value is not None:
+        set_(spec, "exposed_value", str(spec.exposed_value))
+    _choice(spec.estimand, ESTIMANDS, "--estimand")
+    _choice(spec.alternative, ALTERNATIVES, "--alternative")
+    _choice(spec.engine, ENGINES, "--engine")
+    _choice(spec.statistic, STATISTICS, "--statistic")
+    _choice(spec.measure, MEASURES, "--measure")
+    _choice(spec.trim, TRIM_RULES, "--trim")
+    _choice(spec.score_model, SCORE_MODELS, "--score-model")
+    _choice(spec.strata_method, STRATA_METHODS, "--strata-method")
+    _choice(spec.missing, MISSING_POLICIES, "--missing")
+    _choice(spec.outcome_type, OUTCOME_TYPES, "--outcome-type")
+    set_(spec, "n_strata", _int_in(spec.n_strata, 1, 1000, "--strata"))
+    set_(spec, "min_per_group", _int_in(spec.min_per_group, 1, 10_000, "--min-per-group"))
+    set_(spec, "folds", _int_in(spec.folds, 2, 50, "--folds"))
+    set_(spec, "interaction_min_extra", _int_in(spec.interaction_min_extra, 0, 1000, "--interaction-min-extra"))
+    set_(spec, "resamples", _int_in(spec.resamples, 1, MAX_RESAMPLES, "--resamples",
+                                     "; 10,000 is the default and plenty for p-values near 0.05"))
+    if spec.batch_size is not None:
+        set_(spec, "batch_size", _int_in(spec.batch_size, 1, MAX_RESAMPLES, "--batch-size"))
+    set_(spec, "seed", check_seed(spec.seed, "--seed"))
+    try:
+        alpha = float(spec.alpha)
+    except (TypeError, ValueError):
+        raise InputError(f"`--alpha` must be a number in (0, 0.5]; got {spec.alpha!r}") from None
+    if not (0 < alpha <= 0.5):
+        raise InputError(f"`--alpha` must be a number in (0, 0.5]; got {spec.alpha!r}, e.g. use 0.05")
+    set_(spec, "alpha", alpha)
+    grid = spec.gamma_grid
+    if isinstance(grid, str):
+        grid = [g for g in grid.split(",") if g.strip()]
+    try:
+        grid = tuple(sorted({float(g) for g in grid}))
+    except (TypeError, ValueError):
+        raise InputError(f"`--gamma-grid` must be numbers >= 1 separated by commas; got {spec.gamma_grid!r}") from None
+    if not grid or grid[0] < 1 or not all(math.isfinite(g) and g <= 1e6 for g in grid):
+        raise InputError(f"`--gamma-grid` values must be finite numbers in [1, 1e6], e.g. 1,1.5,2,3; got {spec.gamma_grid!r}")
+    set_(spec, "gamma_grid", grid)
+    if spec.truncate_weights is not None:
+        tw = spec.truncate_weights
+        if isinstance(tw, str):
+            tw = tw.split(",")
+        try:
+            lo, hi = (float(v) for v in tw)
+        except (TypeError, ValueError):
+            raise InputError(f"`--truncate-weights` takes two percentiles LO,HI such as 1,99; got {spec.truncate_weights!r}") from None
+        if not (0 <= lo < hi <= 100):
+            raise InputError(f"`--truncate-weights` needs 0 <= LO < HI <= 100; got {lo},{hi}")
+        set_(spec, "truncate_weights", (lo, hi))
+    if spec.strata_column is not None and spec.strata_method == "adaptive":
+        raise InputError("`--strata-column` and `--strata-method adaptive` exclude each other: choose one")
+    if spec.measure != "difference" and spec.outcome_type == "continuous":
+        raise InputError(f"`--measure {spec.measure}` needs a binary outcome; use --measure difference")
+
+
+#: Keys accepted in a TOML analysis file (the [analysis] table or the top level), mapped to fields.
+_TOML_KEYS = {f.name.replace("_", "-"): f.name for f in dataclasses.fields(AnalysisSpec)}
+_TOML_KEYS.update({"strata": "n_strata", "data": "data_path"})
+
+
+def load_spec_file(path: str | Path) -> dict:
+    """Read a TOML analysis file into a dict of :class:`AnalysisSpec` field values.
+
+    Keys are the long command-line option names (``exposure``, ``exposed-value``, ``strata``,
+    ``gamma-grid`` ...), either at the top level or in an ``[analysis]`` table. A relative
+    ``data`` path is taken relative to the TOML file.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"`--spec` file {str(path)!r} does not exist; give the path of a TOML analysis file")
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise InputError(f"`--spec` file {path.name!r} is not valid TOML ({str(exc).splitlines()[0]}); fix the file") from None
+    raw = raw.get("analysis", raw)
+    out = {}
+    for key, value in raw.items():
+        norm = key.replace("_", "-")
+        if norm not in _TOML_KEYS:
+            close = difflib.get_close_matches(norm, list(_TOML_KEYS), n=3)
+            hint = f"did you mean {', '.join(close)}?" if close else "use the long option names, e.g. exposure, outcome, covariates, strata"
+            raise InputError(f"`--spec` file {path.name!r}: unknown key {key!r}; {hint}")
+        out[_TOML_KEYS[norm]] = value
+    if "data_path" in out and not Path(out["data_path"]).is_absolute():
+        out["data_path"] = str((path.parent / out["data_path"]).resolve())
+    return out

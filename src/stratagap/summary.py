@@ -1,0 +1,61 @@
+"""The short plain-text summary the CLI prints (rendered from ``AnalysisResult.to_dict()``)."""
+
+from __future__ import annotations
+
+import textwrap
+
+__all__ = ["render_summary"]
+
+
+def _n(x, digits=2):
+    return "n/a" if x is None else f"{x:.{digits}f}"
+
+
+def _p(p):
+    return "n/a" if p is None else ("< 0.0001" if p < 1e-4 else f"{p:.4f}")
+
+
+def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) -> str:
+    """Plain-text summary of a result dict; ``truth`` (demo only) adds the known true effect."""
+    q, flow, test, adj, crude = (data["question"], data["flow"], data["test"], data["adjusted"],
+                                 data["crude"])
+    level = int(round(100 * (1 - data["spec"]["alpha"])))
+    lines = [
+        f"stratagap: {q['outcome']} by {q['exposure']} "
+        f"({q['exposed_value']} vs {q['reference_value']}), {q['outcome_type']} outcome",
+        f"  rows read {flow.get('rows_read')} -> analysed {data['n_used']} "
+        f"(exposed {flow['analysed_by_group']['exposed']}, reference "
+        f"{flow['analysed_by_group']['reference']})",
+        f"  estimand: {q['population']}",
+        f"  strata: {len(data['strata'])}; max |SMD| before {_n(data['balance'].get('max_abs_smd_before'), 3)}"
+        f", after {_n(data['balance'].get('max_abs_smd_after'), 3)}",
+        f"  crude {crude['measure']}: {_n(crude['estimate'])} "
+        f"({level}% CI {_n(crude['ci_low'])} to {_n(crude['ci_high'])})",
+        f"  adjusted {adj['measure']}: {_n(adj['estimate'])} "
+        f"({level}% CI {_n(adj['ci_low'])} to {_n(adj['ci_high'])})",
+    ]
+    if truth is not None:
+        key = q["estimand"].lower()
+        lines.append(f"  TRUE effect (invented data, {q['estimand']} in the analysed population): "
+                     f"{truth[key]:.2f}")
+    lines.append(f"  permutation test ({test.get('statistic_kind')}, {test.get('null')}): "
+                 f"p = {_p(test.get('p_value'))} [{test.get('engine')}, {test.get('resamples')} resamples]")
+    sens = data.get("sensitivity") or {}
+    ev = sens.get("e_value") or {}
+    if sens:
+        lines.append(f"  sensitivity: Γ threshold {_n(sens.get('gamma_threshold'))}; "
+                     f"E-value {_n(ev.get('point'))} (CI limit {_n(ev.get('ci_limit'))})")
+    for row in data.get("cross_checks") or []:
+        lines.append(f"  cross-check {row.get('method')}: {_n(row.get('estimate'))} "
+                     f"({_n(row.get('ci_low'))} to {_n(row.get('ci_high'))})")
+    if data.get("warnings"):
+        lines.append(f"  warnings ({len(data['warnings'])}):")
+        for w in data["warnings"]:
+            lines.extend(textwrap.wrap(f"- {w['message']}", width, initial_indent="    ",
+                                       subsequent_indent="      "))
+    lines.append("")
+    lines.extend(textwrap.wrap("Verdict: " + data["verdict"], width))
+    lines.append("")
+    for c in data["cautions"]:
+        lines.extend(textwrap.wrap(c, width, initial_indent="! ", subsequent_indent="  "))
+    return "\n".join(lines) + "\n"
