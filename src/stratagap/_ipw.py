@@ -197,15 +197,12 @@ def weight_summary(w: np.ndarray, t: np.ndarray) -> dict:
     return out
 
 
-def ipw_fit(y, t, X, estimand, truncate=None, known_score=None):
-    """Hájek IPW means with the stacked sandwich covariance.
+def fit_score(t, X, known_score=None):
+    """Refit the logistic score on ``[1, X]``; fall back to ``known_score`` if it separates.
 
-    Returns a dict with ``mu (2,)``, ``cov (2, 2)``, ``cov_known_score (2, 2)``, ``score``,
-    ``weights`` (the Hájek unit weights used), ``clipped``, ``bounds``, ``score_ok`` and
-    ``beta``. With ``known_score`` (used only when the refit fails) the score block is dropped
-    and the covariance treats the score as known.
+    Returns a dict ``Z, beta, e, ok`` or None when the refit separates and no score was given.
     """
-    n = y.size
+    n = t.size
     Z = np.column_stack([np.ones(n), X])
     keep = full_rank_columns(Z)
     if keep.size < Z.shape[1]:
@@ -217,37 +214,15 @@ def ipw_fit(y, t, X, estimand, truncate=None, known_score=None):
         )
     Z = Z[:, keep]
     beta, e, ok = fit_logistic(Z, t.astype(float), "score model for the cross-checks")
-    use_known = not ok
-    if use_known:
+    if not ok:
         if known_score is None:
             return None
         e = np.asarray(known_score, dtype=float)
-    w1, w0, _, _ = _weight_parts(e, t, estimand)
-    w = w1 + w0
-    clipped = np.zeros(n, dtype=bool)
-    bounds = None
-    if truncate is not None:
-        w, clipped, bounds = truncate_weights(w, t, truncate)
-    mu1 = np.sum(w * t * y) / np.sum(w * t)  # Hájek normalized mean (Lunceford & Davidian 2004, eq. 10)
-    mu0 = np.sum(w * (1 - t) * y) / np.sum(w * (1 - t))
-    # Score treated as known: the two mean equations alone (reported beside, for comparison).
-    psi_mu = np.column_stack([w * t * (y - mu1), w * (1 - t) * (y - mu0)])
-    A_mu = np.diag([np.mean(w * t), np.mean(w * (1 - t))])
-    cov_known = sandwich(psi_mu, A_mu)
-    if use_known:
-        cov = cov_known
-    else:
-        theta = np.concatenate([beta, [mu1, mu0]])
-        clip_limits = None
-        if truncate is not None:
-            # per-unit limits: the unit's own group bounds
-            lo = np.where(t == 1, bounds["exposed"][0], bounds["reference"][0])
-            hi = np.where(t == 1, bounds["exposed"][1], bounds["reference"][1])
-            clip_limits = (lo, hi)
-        psi = ipw_equations(theta, y, t, Z, estimand, clip_limits)
-        A = ipw_bread(theta, y, t, Z, estimand, clip_limits)
-        cov = sandwich(psi, A)[-2:, -2:]
-    summary = weight_summary(w1 + w0, t)
+    return {"Z": Z, "beta": beta, "e": e, "ok": ok}
+
+
+def flag_weights(summary: dict) -> None:
+    """Warn when one unit carries more than :data:`MAX_SHARE_FLAG` of its group's weight."""
     flagged = [g for g, s in summary.items() if s["max_share"] > MAX_SHARE_FLAG]
     if flagged:
         worst = max(summary[g]["max_share"] for g in flagged)
@@ -258,15 +233,49 @@ def ipw_fit(y, t, X, estimand, truncate=None, known_score=None):
             WeightWarning,
             stacklevel=3,
         )
+
+
+def ipw_fit(y, t, score_fit, estimand, truncate=None):
+    """Hájek IPW means with the stacked sandwich covariance.
+
+    ``score_fit`` comes from :func:`fit_score`. Returns a dict with ``mu (2,)``, ``cov (2, 2)``,
+    ``cov_known_score (2, 2)``, ``score``, ``raw_weights``, ``weights`` (used, possibly
+    truncated), ``clipped``, ``bounds`` and ``score_ok``. When the refit failed the score block
+    is dropped and the covariance treats the given score as known.
+    """
+    n = y.size
+    Z, beta, e, ok = score_fit["Z"], score_fit["beta"], score_fit["e"], score_fit["ok"]
+    w1, w0, _, _ = _weight_parts(e, t, estimand)
+    raw = w1 + w0
+    w, clipped, bounds = raw, np.zeros(n, dtype=bool), None
+    if truncate is not None:
+        w, clipped, bounds = truncate_weights(raw, t, truncate)
+    mu1 = np.sum(w * t * y) / np.sum(w * t)  # Hájek normalized mean (Lunceford & Davidian 2004, eq. 10)
+    mu0 = np.sum(w * (1 - t) * y) / np.sum(w * (1 - t))
+    # Score treated as known: the two mean equations alone (reported beside, for comparison).
+    psi_mu = np.column_stack([w * t * (y - mu1), w * (1 - t) * (y - mu0)])
+    A_mu = np.diag([np.mean(w * t), np.mean(w * (1 - t))])
+    cov_known = sandwich(psi_mu, A_mu)
+    if not ok:
+        cov = cov_known
+    else:
+        theta = np.concatenate([beta, [mu1, mu0]])
+        clip_limits = None
+        if truncate is not None:  # each unit's own group limits
+            lo = np.where(t == 1, bounds["exposed"][0], bounds["reference"][0])
+            hi = np.where(t == 1, bounds["exposed"][1], bounds["reference"][1])
+            clip_limits = (lo, hi)
+        psi = ipw_equations(theta, y, t, Z, estimand, clip_limits)
+        A = ipw_bread(theta, y, t, Z, estimand, clip_limits)
+        cov = sandwich(psi, A)[-2:, -2:]
     return {
         "mu": np.array([mu1, mu0]),
         "cov": cov,
         "cov_known_score": cov_known,
         "score": e,
-        "raw_weights": w1 + w0,
+        "raw_weights": raw,
         "weights": w,
         "clipped": clipped,
         "bounds": bounds,
-        "score_ok": not use_known,
-        "beta": beta,
+        "score_ok": ok,
     }

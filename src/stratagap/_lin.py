@@ -33,7 +33,6 @@ Sciences. Cambridge University Press, ch. 6-7 and 17.
 from __future__ import annotations
 
 import numpy as np
-from scipy.linalg import solve_triangular
 
 #: A unit whose leverage is at least 1 - LEVERAGE_TOL has an undefined HC2 weight.
 LEVERAGE_TOL = 1e-10
@@ -60,10 +59,10 @@ def hc2_ols(D: np.ndarray, y: np.ndarray):
     h = np.einsum("ij,ij->i", Q, Q)  # leverages
     if h.max() >= 1.0 - LEVERAGE_TOL:
         return None, None, f"leverage reaches 1 for {int(np.sum(h >= 1.0 - LEVERAGE_TOL))} unit(s)"
-    beta = solve_triangular(R, Q.T @ y)
+    Rinv = np.linalg.inv(R)  # k x k, upper triangular and well conditioned (scaled columns)
+    beta = Rinv @ (Q.T @ y)
     e = y - D @ beta
     u = e * e / (1.0 - h)  # MacKinnon & White 1985: HC2 weights
-    Rinv = solve_triangular(R, np.eye(k))
     meat = (Q * u[:, None]).T @ Q
     cov = Rinv @ meat @ Rinv.T
     return beta, cov, None
@@ -93,7 +92,9 @@ def _screen_columns(Xc: np.ndarray, t: np.ndarray, names):
         Z = Z / Z.std(axis=0)
         D = np.column_stack([np.ones(n), t, Z])
         R = np.linalg.qr(D, mode="r")
-        rel = np.abs(np.diag(R))[2:] / np.linalg.norm(Z, axis=0)
+        diag = np.zeros(D.shape[1])  # with fewer units than columns the rest are dependent
+        diag[:min(D.shape)] = np.abs(np.diag(R))
+        rel = diag[2:] / np.linalg.norm(Z, axis=0)
         dependent = rel <= COLLINEAR_TOL
         if dependent.any():
             notes.append("linear combination of other columns (or of the exposure): "

@@ -1,0 +1,513 @@
+"""Stratified permutation test: shuffle the exposure labels within strata, keeping group sizes.
+
+Every statistic here is a function of the per-stratum sums ``S_s`` of the value columns over
+the exposed units (the sufficient statistics of a within-stratum shuffle), so one engine core
+(:func:`null_exposed_sums`) serves them all:
+
+* ``"mean_difference"``: ``T = sum_s w_s (S_s (1/n1_s + 1/n0_s) - R_s / n0_s)``, the
+  estimand-weighted difference of exposed and reference means (``R_s`` the stratum total;
+  ATE ``w_s = n_s/n``, ATT ``w_s = n1_s/n1``). Linear in the labels; tests the sharp null.
+* ``"studentized"``: the same difference divided by ``sqrt(sum_s w_s^2 (s1_s^2/n1_s +
+  s0_s^2/n0_s))``; asymptotically valid for the weak null of zero average effect (Wu & Ding
+  2021; Chung & Romano 2013). Needs at least 2 units of each group per stratum.
+* ``"sum"``: ``T = sum_s S_s``; for a binary outcome the Mantel--Haenszel (CMH) statistic.
+
+Engines: ``"exact"`` (enumeration of all assignments when there are few, or the exact
+convolution of hypergeometrics for the binary sum), ``"monte_carlo"`` (see
+:mod:`stratagap._engine_mc`), ``"normal"`` (normal approximation with the exact permutation
+mean and variance). The normal p-values are always reported beside the chosen engine's.
+
+References
+----------
+Rosenbaum, P. R. (2002). Covariance adjustment in randomized experiments and observational
+studies. Statistical Science 17:286-327.
+Phipson, B. & Smyth, G. K. (2010). Permutation p-values should never be zero. Statistical
+Applications in Genetics and Molecular Biology 9(1), article 39.
+Wu, J. & Ding, P. (2021). Randomization tests for weak null hypotheses in randomized
+experiments. Journal of the American Statistical Association 116:1898-1913.
+Chung, E. & Romano, J. P. (2013). Exact and asymptotically robust permutation tests. Annals of
+Statistics 41:484-507.
+Mantel, N. & Haenszel, W. (1959). JNCI 22:719-748.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import stats
+
+from . import _engine_exact as _exact
+from . import _engine_mc as _mc
+from ._errors import InputError
+from ._rng import check_seed
+
+__all__ = ["PermutationResult", "residualize", "null_exposed_sums", "null_statistics",
+           "normal_moments", "stratified_test", "STATISTICS", "ENGINES", "ALTERNATIVES"]
+
+STATISTICS = ("mean_difference", "studentized", "sum")
+ENGINES = ("auto", "exact", "monte_carlo", "normal")
+ALTERNATIVES = ("two-sided", "greater", "less")
+MAX_RESAMPLES = 10_000_000
+SHARP_NULL = "sharp null: no effect for any unit"
+WEAK_NULL = "weak null: zero average effect (asymptotic)"
+#: Relative tolerance for ties between a resampled and the observed statistic (as scipy does).
+TIE_RTOL = 1e-13
+
+
+def _clean(values, t, labels, *, columns_ok=True):
+    """Check and clean the arrays; returns (V (n,k) for kept rows, t, codes, S, keep)."""
+    t = np.asarray(t)
+    labels = np.asarray(labels)
+    if t.ndim != 1:
+        raise InputError(f"`t` must be a 1-D array of 0/1 exposure labels, got shape {t.shape}")
+    n = t.size
+    if labels.shape != (n,):
+        raise InputError(f"`labels` must have shape ({n},) like `t`, got {labels.shape}")
+    v = np.asarray(values, dtype=float)
+    if v.ndim == 1:
+        v = v[:, None]
+    if v.ndim != 2 or v.shape[0] != n or (not columns_ok and v.shape[1] != 1):
+        raise InputError(f"`values` must have {n} rows like `t` (1-D, or 2-D with one column "
+                         f"per value), got shape {np.shape(values)}")
+    if not np.all((t == 0) | (t == 1)):
+        raise InputError("`t` must hold only 0 (reference) and 1 (exposed); recode the exposure")
+    if not np.issubdtype(labels.dtype, np.integer):
+        raise InputError("`labels` must be integer stratum labels (-1 = set aside)")
+    keep = labels >= 0
+    if not np.all(np.isfinite(v[keep])):
+        raise InputError("`values` must be finite in every analysed row; drop or impute "
+                         "missing values first")
+    uniq, codes = _codes(labels[keep])
+    if uniq.size == 0:
+        raise InputError("`labels`: no stratum left (every row is -1); nothing to test")
+    tk = t[keep].astype(np.int64)
+    n_s = np.bincount(codes, minlength=uniq.size)
+    n1_s = np.bincount(codes, weights=tk, minlength=uniq.size)
+    bad = np.flatnonzero((n1_s == 0) | (n1_s == n_s))
+    if bad.size:
+        raise InputError(f"`labels`: stratum {int(uniq[bad[0]])} has units of only one group; "
+                         "every stratum needs at least 1 exposed and 1 reference unit "
+                         "(merge strata or set it aside with label -1)")
+    return v[keep], tk, codes.astype(np.int64), int(uniq.size), keep
+
+
+def _codes(lab):
+    """Sorted distinct labels and each row's position among them (bincount when compact)."""
+    if lab.size and 0 <= lab.min() and lab.max() < 4 * lab.size + 1024:
+        present = np.bincount(lab) > 0
+        uniq = np.flatnonzero(present)
+        lookup = np.cumsum(present) - 1
+        return uniq, lookup[lab]
+    return np.unique(lab, return_inverse=True)
+
+
+def _weights(n, n1, estimand):
+    if estimand == "ate":
+        return n / n.sum()  # ATE: stratum share of units
+    if estimand == "att":
+        return n1 / n1.sum()  # ATT: stratum share of exposed units
+    raise InputError(f"`estimand` must be 'ate' or 'att', got {estimand!r}")
+
+
+def _check_choice(value, allowed, name):
+    if value not in allowed:
+        raise InputError(f"`{name}` must be one of {', '.join(allowed)}; got {value!r}")
+
+
+def _check_resamples(resamples):
+    if isinstance(resamples, (bool, np.bool_)) or not isinstance(resamples, (int, np.integer)) \
+            or not 1 <= int(resamples) <= MAX_RESAMPLES:
+        raise InputError(f"`--resamples` must be an integer from 1 to {MAX_RESAMPLES:,}, got "
+                         f"{resamples!r}; 10000 is a good default")
+    return int(resamples)
+
+
+def residualize(y, X, labels) -> np.ndarray:
+    """Residuals of ``y`` on ``X`` with stratum fixed effects (never uses the exposure).
+
+    Least squares on within-stratum demeaned ``y`` and ``X`` (the fixed-effects / within
+    estimator, identical to OLS with one dummy per stratum); ``numpy.linalg.lstsq`` so a
+    rank-deficient ``X`` is fine (minimum-norm coefficients, same residuals).
+
+    Parameters
+    ----------
+    y : (n,) float array
+    X : (n, p) float array, no intercept column (p may be 0)
+    labels : (n,) int array of stratum labels; rows with -1 are ignored
+
+    Returns
+    -------
+    r : (n,) float array; NaN in rows with label -1.
+
+    References
+    ----------
+    Rosenbaum (2002), Statistical Science 17:286, section 2 (permuting covariance-adjusted
+    residuals keeps the test exact for the sharp null, since they do not depend on the labels).
+    """
+    y = np.asarray(y, dtype=float)
+    labels = np.asarray(labels)
+    X = np.asarray(X, dtype=float).reshape(y.size, -1)
+    if labels.shape != y.shape:
+        raise InputError(f"`labels` must have shape {y.shape} like `y`, got {labels.shape}")
+    keep = labels >= 0
+    _, codes = _codes(labels[keep])
+    n_s = np.bincount(codes)
+
+    def demean(a):
+        means = np.stack([np.bincount(codes, weights=col) for col in a.T], axis=1) / n_s[:, None]
+        return a - means[codes]
+
+    yk = demean(y[keep, None])[:, 0]  # within-stratum demeaning = stratum fixed effects
+    r = np.full(y.size, np.nan)
+    if X.shape[1]:
+        Xk = demean(X[keep])
+        beta = np.linalg.lstsq(Xk, yk, rcond=None)[0]
+        yk = yk - Xk @ beta
+    r[keep] = yk
+    return r
+
+
+def null_exposed_sums(values, t, labels, resamples, seed, batch_size=None, progress=None,
+                      workers=1) -> np.ndarray:
+    """Per-stratum exposed sums of each value column under within-stratum shuffles.
+
+    Returns an array ``(k, S, B)``: ``out[j, s, b]`` is the sum of ``values[:, j]`` over the
+    units of stratum ``s`` that resample ``b`` labels exposed (strata in the order of their
+    sorted labels; rows with label -1 ignored). Identical for every ``batch_size`` and
+    ``workers``; memory: see :mod:`stratagap._engine_mc`.
+    """
+    v, tk, codes, n_strata, _ = _clean(values, t, labels)
+    resamples = _check_resamples(resamples)
+    plan = _mc.make_plan(v, tk, codes, n_strata)
+    out = np.empty((v.shape[1], n_strata, resamples))
+    for lo, hi, sums in _mc.iter_batches(plan, resamples, check_seed(seed),
+                                         _check_batch(batch_size), progress, workers):
+        out[:, :, lo:hi] = sums
+    return out
+
+
+def _check_batch(batch_size):
+    if batch_size is None:
+        return None
+    if isinstance(batch_size, (bool, np.bool_)) or not isinstance(batch_size, (int, np.integer)) \
+            or batch_size < 1:
+        raise InputError(f"`batch_size` must be a positive integer or None, got {batch_size!r}")
+    return int(batch_size)
+
+
+@dataclass(frozen=True)
+class _Design:
+    """Per-stratum constants of a statistic: sizes, weights and totals."""
+
+    n: np.ndarray
+    n1: np.ndarray
+    w: np.ndarray
+    totals: np.ndarray  # (k, S)
+    statistic: str
+
+    def stat(self, sums: np.ndarray) -> np.ndarray:
+        """Statistic from exposed sums (k, S, B) -> (B,)."""
+        n, n1 = self.n[:, None], self.n1[:, None]
+        n0 = n - n1
+        w = self.w[:, None]
+        S, R = sums[0], self.totals[0][:, None]
+        if self.statistic == "sum":
+            return S.sum(axis=0)  # Mantel & Haenszel 1959: exposed events summed over strata
+        # difference of exposed and reference means, linear in S_s
+        diff = S * (1 / n1 + 1 / n0) - R / n0
+        if self.statistic == "mean_difference":
+            return (w * diff).sum(axis=0)
+        # studentized (values centred within strata; column 1 holds their squares)
+        Q, QR = sums[1], self.totals[1][:, None]
+        s1 = (Q - S**2 / n1) / (n1 - 1)  # exposed sample variance
+        s0 = ((QR - Q) - (R - S) ** 2 / n0) / (n0 - 1)  # reference sample variance
+        num = (w * diff).sum(axis=0)
+        den = (w**2 * (np.maximum(s1, 0) / n1 + np.maximum(s0, 0) / n0)).sum(axis=0)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            z = num / np.sqrt(den)  # Wu & Ding 2021, eq. for the studentized difference
+        return np.where(den > 0, z, np.where(num == 0, 0.0, np.sign(num) * np.inf))
+
+
+def _prepare(values, t, labels, estimand, statistic):
+    v, tk, codes, n_strata, _ = _clean(values, t, labels, columns_ok=False)
+    n = np.bincount(codes, minlength=n_strata).astype(float)
+    n1 = np.bincount(codes, weights=tk, minlength=n_strata)
+    w = _weights(n, n1, estimand)
+    if statistic == "studentized":
+        if np.any(n1 < 2) or np.any(n - n1 < 2):
+            raise InputError("`statistic` 'studentized' needs at least 2 exposed and 2 "
+                             "reference units in every stratum; use 'mean_difference' or "
+                             "merge strata")
+        mean_s = np.bincount(codes, weights=v[:, 0], minlength=n_strata) / n
+        c = v[:, 0] - mean_s[codes]  # centring within strata avoids cancellation in s^2
+        v = np.column_stack([c, c**2])
+    totals = np.stack([np.bincount(codes, weights=v[:, j], minlength=n_strata)
+                       for j in range(v.shape[1])])
+    return v, tk, codes, n_strata, _Design(n, n1, w, totals, statistic)
+
+
+def _exposed_sums(v, tk, codes, n_strata):
+    return np.stack([np.bincount(codes, weights=v[:, j] * tk, minlength=n_strata)
+                     for j in range(v.shape[1])])
+
+
+def _moments(v, codes, n_strata, design: _Design):
+    """Exact permutation mean and variance of a linear statistic."""
+    if design.statistic == "studentized":
+        return 0.0, 1.0
+    n, n1, w = design.n, design.n1, design.w
+    n0 = n - n1
+    R = design.totals[0]
+    ss = np.bincount(codes, weights=(v[:, 0] - (R / n)[codes]) ** 2, minlength=n_strata)
+    mean_s = n1 * R / n  # E S_s = n1_s R_s / n_s
+    var_s = n1 * n0 / (n * (n - 1)) * ss  # Var S_s, sampling without replacement
+    var_s = np.where(n > 1, var_s, 0.0)
+    if design.statistic == "sum":
+        a, b = np.ones_like(n), np.zeros_like(n)
+    else:
+        a, b = w * (1 / n1 + 1 / n0), -w * R / n0
+    return float(np.sum(a * mean_s + b)), float(np.sum(a**2 * var_s))
+
+
+def normal_moments(values, t, labels, estimand, statistic="mean_difference"):
+    """Mean and variance of the statistic under the within-strata permutation null.
+
+    For ``"mean_difference"`` and ``"sum"`` these are exact (linear statistics:
+    ``E S_s = n1_s R_s / n_s``, ``Var S_s = n1_s n0_s / (n_s (n_s - 1)) sum_i (v_i - vbar_s)^2``);
+    for ``"studentized"`` the asymptotic N(0, 1) moments ``(0, 1)``.
+    """
+    _check_choice(statistic, STATISTICS, "statistic")
+    v, _, codes, n_strata, design = _prepare(values, t, labels, estimand, statistic)
+    return _moments(v, codes, n_strata, design)
+
+
+def _normal_p(observed, mean, var, statistic):
+    if statistic != "studentized" and var <= 0:
+        return 1.0, 1.0
+    z = (observed - mean) / np.sqrt(var)
+    return float(stats.norm.sf(z)), float(stats.norm.cdf(z))
+
+
+def _tail_p(null, observed, weights=None):
+    """P(T* >= T_obs), P(T* <= T_obs) with a relative tie tolerance (scipy does the same)."""
+    finite = np.isfinite(null)
+    scale = max(abs(observed) if np.isfinite(observed) else 0.0,
+                float(np.max(np.abs(null[finite]))) if finite.any() else 0.0)
+    gamma = TIE_RTOL * scale
+    ge, le = null >= observed - gamma, null <= observed + gamma
+    if weights is None:
+        return int(ge.sum()), int(le.sum())
+    return float(weights[ge].sum()), float(weights[le].sum())
+
+
+def _two_sided(pg, pl):
+    return min(1.0, 2.0 * min(pg, pl))
+
+
+def _summary(null, weights):
+    """Quantiles (and mean, sd) of a null distribution for JSON (the array itself is not kept)."""
+    if null is None or null.size == 0:
+        return None
+    qs = (0.001, 0.01, 0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975, 0.99, 0.999)
+    finite = np.isfinite(null)
+    x = null[finite]
+    w = np.ones(x.size) / max(x.size, 1) if weights is None else weights[finite] / weights[finite].sum()
+    order = np.argsort(x, kind="stable")
+    cw = np.cumsum(w[order])
+    quant = {f"q{q:g}": float(x[order][min(np.searchsorted(cw, q - 1e-12), x.size - 1)])
+             for q in qs}
+    mean = float(np.sum(w * x))
+    return {"n": int(null.size), "mean": mean, "sd": float(np.sqrt(np.sum(w * (x - mean) ** 2))),
+            "quantiles": quant}
+
+
+def _num(x):
+    if x is None:
+        return None
+    x = float(x)
+    return x if np.isfinite(x) else None
+
+
+@dataclass(frozen=True)
+class PermutationResult:
+    """Result of :func:`stratified_test`.
+
+    ``null_distribution`` holds the resampled (or enumerated) statistics; with
+    ``null_weights`` (exact convolution) it is the support and the weights its probabilities.
+    ``to_dict()`` gives only a summary of it.
+    """
+
+    statistic: float
+    p_value: float
+    p_greater: float
+    p_less: float
+    mc_se: float | None
+    engine: str
+    resamples: int
+    seed: int
+    null: str
+    n_assignments: float | None
+    log10_assignments: float
+    normal_p_value: float
+    normal_p_greater: float
+    normal_p_less: float
+    normal_mean: float
+    normal_variance: float
+    statistic_name: str
+    alternative: str
+    estimand: str
+    batch_size: int | None
+    exact: bool
+    engine_reason: str
+    null_distribution: np.ndarray = field(repr=False)
+    null_weights: np.ndarray | None = field(default=None, repr=False)
+
+    def to_dict(self) -> dict:
+        d = {}
+        for name in ("statistic", "p_value", "p_greater", "p_less", "mc_se", "n_assignments",
+                     "log10_assignments", "normal_p_value", "normal_p_greater", "normal_p_less",
+                     "normal_mean", "normal_variance"):
+            d[name] = _num(getattr(self, name))
+        for name in ("engine", "null", "statistic_name", "alternative", "estimand",
+                     "engine_reason"):
+            d[name] = str(getattr(self, name))
+        d["resamples"] = int(self.resamples)
+        d["seed"] = int(self.seed)
+        d["batch_size"] = None if self.batch_size is None else int(self.batch_size)
+        d["exact"] = bool(self.exact)
+        d["null_summary"] = _summary(self.null_distribution, self.null_weights)
+        return d
+
+
+def _pick(alternative, pg, pl):
+    if alternative == "greater":
+        return pg
+    if alternative == "less":
+        return pl
+    return _two_sided(pg, pl)
+
+
+def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
+                    alternative="two-sided", engine="auto", resamples=10000, seed=0,
+                    batch_size=None, progress=None, workers=1) -> PermutationResult:
+    """Stratified permutation test of the labels' association with ``values``.
+
+    Parameters
+    ----------
+    values : (n,) float array (e.g. covariance-adjusted residuals from :func:`residualize`)
+    t : (n,) 0/1 exposure labels
+    labels : (n,) int stratum labels; -1 rows are ignored
+    estimand : "ate" or "att" (stratum weights of the mean differences)
+    statistic : "mean_difference" (default), "studentized" or "sum"
+    alternative : "two-sided" (default; ``min(1, 2 min(p_greater, p_less))``), "greater", "less"
+    engine : "auto" (exact when the binary sum's convolution applies or there are at most
+        ``resamples`` assignments, else Monte Carlo), "exact", "monte_carlo" or "normal"
+    resamples : int, 1 to 10,000,000 (Monte Carlo resamples)
+    seed : non-negative int
+    batch_size : resamples per batch (None: a 32 MiB budget for the sums); results do not
+        depend on it
+    progress : optional callable ``progress(n_done, n_total)`` called after each batch
+    workers : threads drawing blocks of resamples; results do not depend on it
+
+    Returns
+    -------
+    PermutationResult
+
+    Notes
+    -----
+    Monte Carlo p-values are ``(b + 1) / (B + 1)`` with ``b`` the resamples at least as extreme
+    (Phipson & Smyth 2010), with standard error ``sqrt(p (1 - p) / B)``. Ties with the observed
+    statistic are counted within a relative tolerance of 1e-13.
+
+    References
+    ----------
+    See the module docstring.
+    """
+    _check_choice(statistic, STATISTICS, "statistic")
+    _check_choice(alternative, ALTERNATIVES, "--alternative")
+    _check_choice(engine, ENGINES, "engine")
+    resamples = _check_resamples(resamples)
+    seed = check_seed(seed)
+    batch_size = _check_batch(batch_size)
+    v, tk, codes, n_strata, design = _prepare(values, t, labels, estimand, statistic)
+    observed = float(design.stat(_exposed_sums(v, tk, codes, n_strata)[:, :, None])[0])
+    mean, var = _moments(v, codes, n_strata, design)
+    npg, npl = _normal_p(observed, mean, var, statistic)
+    log_a = _exact.log_assignments(design.n, design.n1)
+    n_assign = _exact.n_assignments(design.n, design.n1)
+    binary_sum = statistic == "sum" and bool(np.all((v == 0) | (v == 1)))
+    small = n_assign is not None and n_assign <= _exact.MAX_ASSIGNMENTS
+    if engine == "auto":
+        if binary_sum:
+            engine, reason = "exact", "binary outcome with the sum statistic: exact convolution"
+        elif small and n_assign <= resamples:
+            engine, reason = "exact", f"{n_assign} assignments <= {resamples} resamples"
+        else:
+            engine, reason = "monte_carlo", "more assignments than resamples"
+    elif engine == "exact" and not (binary_sum or small):
+        raise InputError(f"`engine` 'exact' needs at most {_exact.MAX_ASSIGNMENTS:,} "
+                         f"within-strata assignments (here about 10^{log_a / np.log(10):.1f}); "
+                         "use engine 'monte_carlo' or 'auto'")
+    else:
+        reason = "requested"
+    weights, mc_se, exact = None, None, engine == "exact"
+    if engine == "normal":
+        null = np.empty(0)
+        pg, pl = npg, npl
+    elif engine == "exact" and binary_sum:
+        null, weights = _exact.hypergeometric_sum_pmf(design.n, design.totals[0], design.n1)
+        null = null.astype(float)
+        pg, pl = _tail_p(null, observed, weights)
+    elif engine == "exact":
+        null = design.stat(_exact.enumerate_exposed_sums(v, tk, codes, n_strata))
+        ge, le = _tail_p(null, observed)
+        pg, pl = ge / null.size, le / null.size
+    else:
+        plan = _mc.make_plan(v, tk, codes, n_strata)
+        null = np.empty(resamples)
+        for lo, hi, sums in _mc.iter_batches(plan, resamples, seed, batch_size, progress, workers):
+            null[lo:hi] = design.stat(sums)
+        ge, le = _tail_p(null, observed)
+        pg, pl = (ge + 1) / (resamples + 1), (le + 1) / (resamples + 1)  # Phipson & Smyth 2010
+    p = _pick(alternative, pg, pl)
+    if engine == "monte_carlo":
+        mc_se = float(np.sqrt(p * (1 - p) / resamples))  # binomial MC standard error
+    return PermutationResult(
+        statistic=observed, p_value=float(p), p_greater=float(pg), p_less=float(pl),
+        mc_se=mc_se, engine=engine, resamples=resamples, seed=seed,
+        null=WEAK_NULL if statistic == "studentized" else SHARP_NULL,
+        n_assignments=None if n_assign is None else float(n_assign),
+        log10_assignments=log_a / np.log(10), normal_p_value=_pick(alternative, npg, npl),
+        normal_p_greater=npg, normal_p_less=npl, normal_mean=mean, normal_variance=var,
+        statistic_name=statistic, alternative=alternative, estimand=estimand,
+        batch_size=batch_size, exact=exact, engine_reason=reason,
+        null_distribution=null, null_weights=weights)
+
+
+def null_statistics(values, t, labels, *, estimand, resamples, seed, batch_size=None,
+                    progress=None, workers=1):
+    """Mean-difference statistics of several value columns under the SAME shuffles.
+
+    Returns ``(observed (k,), null (k, B))``. Used by the constant-effect inversion: with
+    columns ``r_y`` and ``r_t``, ``T(tau0) = T_y - tau0 T_t`` for every shuffle. Column 0's
+    null equals :func:`stratified_test`'s Monte Carlo null for the same seed when column 0 has
+    no ties within strata (rows are sorted by column 0, then the others).
+    """
+    v, tk, codes, n_strata, _ = _clean(values, t, labels)
+    resamples = _check_resamples(resamples)
+    n = np.bincount(codes, minlength=n_strata).astype(float)
+    n1 = np.bincount(codes, weights=tk, minlength=n_strata)
+    w = _weights(n, n1, estimand)
+    totals = np.stack([np.bincount(codes, weights=v[:, j], minlength=n_strata)
+                       for j in range(v.shape[1])])
+    designs = [_Design(n, n1, w, totals[j:j + 1], "mean_difference") for j in range(v.shape[1])]
+    obs_sums = _exposed_sums(v, tk, codes, n_strata)
+    observed = np.array([d.stat(obs_sums[j:j + 1, :, None])[0] for j, d in enumerate(designs)])
+    plan = _mc.make_plan(v, tk, codes, n_strata)
+    null = np.empty((v.shape[1], resamples))
+    for lo, hi, sums in _mc.iter_batches(plan, resamples, check_seed(seed),
+                                         _check_batch(batch_size), progress, workers):
+        for j, d in enumerate(designs):
+            null[j, lo:hi] = d.stat(sums[j:j + 1])
+    return observed, null

@@ -1,0 +1,131 @@
+"""The values the report template shows, gathered from the result (never recomputed).
+
+Everything here is plain data; every string keeps its original text and is escaped by the
+template (jinja2 autoescape), so user-supplied file names, column names and levels can never
+become markup.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+
+from .baseline import BASELINE_COLUMNS, analysed_raw, baseline_table
+from .flow import flow_steps
+
+__all__ = ["build_context", "spec_toml"]
+
+
+def _f(x, digits=2):
+    if x is None or (isinstance(x, float) and not math.isfinite(x)):
+        return "n/a"
+    if isinstance(x, (int, float)) and abs(x) != 0 and (abs(x) < 10 ** -digits or abs(x) >= 1e6):
+        return f"{x:.{max(digits, 2)}g}"
+    return f"{x:,.{digits}f}"
+
+
+def _estimate_row(label, est, level):
+    if not est:
+        return None
+    lo, hi = est.get("ci_low"), est.get("ci_high")
+    return {"label": label, "estimate": _f(est.get("estimate")), "se": _f(est.get("se"), 3),
+            "ci": f"{_f(lo)} to {_f(hi)}" if lo is not None or hi is not None else "n/a",
+            "measure": est.get("measure", ""), "estimand": est.get("estimand", ""),
+            "population": est.get("population", ""), "method": est.get("method", ""),
+            "level": level}
+
+
+def spec_toml(data: dict) -> str:
+    """The analysis as a TOML file that ``stratagap analyze --spec`` reads back."""
+    spec = dict(data.get("spec") or {})
+    lines = ["[analysis]"]
+    file = (data.get("source") or {}).get("file")
+    if file:
+        lines.append(f"data = {json.dumps(str(file), ensure_ascii=False)}")
+    for key, value in spec.items():
+        if value is None or key == "data_path":
+            continue
+        lines.append(f"{key.replace('_', '-')} = {json.dumps(value, ensure_ascii=False)}")
+    return "\n".join(lines) + "\n"
+
+
+def _strata_rows(data):
+    per = {row.get("stratum"): row for row in (data.get("adjusted") or {}).get("per_stratum") or []}
+    out = []
+    for row in data.get("strata") or []:
+        p = per.get(row.get("stratum"), {})
+        out.append({"stratum": int(row.get("stratum", 0)) + 1,
+                    "range": f"{_f(row.get('score_low'), 3)} to {_f(row.get('score_high'), 3)}",
+                    "n_exposed": row.get("n_exposed"), "n_reference": row.get("n_reference"),
+                    "n": row.get("n"), "weight": _f(row.get("weight", p.get("weight")), 3),
+                    "estimate": _f(p.get("estimate")),
+                    "ci": f"{_f(p.get('ci_low'))} to {_f(p.get('ci_high'))}" if p else "n/a",
+                    "model": p.get("model", "")})
+    return out
+
+
+def _test_rows(test):
+    rows = []
+    for label, t in (("default", test), ("studentized companion", test.get("studentized")),
+                     ("sum of exposed outcomes", test.get("sum_statistic"))):
+        if not t:
+            continue
+        rows.append({"label": label, "statistic": _f(t.get("statistic"), 4),
+                     "p": t.get("p_value"), "normal_p": t.get("normal_p_value"),
+                     "mc_se": t.get("mc_se"), "engine": t.get("engine", ""),
+                     "null": t.get("null", ""), "resamples": t.get("resamples")})
+    return rows
+
+
+def build_context(view, figures: dict, *, compact: bool) -> dict:
+    data = view.data
+    q = data.get("question") or {}
+    adj = data.get("adjusted") or {}
+    alpha = float((data.get("spec") or {}).get("alpha") or adj.get("alpha") or 0.05)
+    level = int(round(100 * (1 - alpha)))
+    effects = [_estimate_row("crude (unadjusted)", data.get("crude"), level),
+               _estimate_row("adjusted (headline)", adj, level),
+               _estimate_row("plain stratified difference", adj.get("plain_stratified"), level),
+               _estimate_row("constant effect by test inversion", adj.get("constant_effect"), level),
+               _estimate_row("standardized risk ratio", adj.get("standardized_risk_ratio"), level)]
+    for key, est in (adj.get("mantel_haenszel") or {}).items():
+        if isinstance(est, dict):
+            effects.append(_estimate_row(f"Mantel-Haenszel {key.replace('_', ' ')}", est, level))
+    cross = [_estimate_row(r.get("method", ""), r, level) | {"kind": r.get("estimand_kind", ""),
+                                                             "se_method": r.get("se_method", "")}
+             for r in data.get("cross_checks") or []]
+    sens = data.get("sensitivity") or {}
+    tip = sens.get("tipping") or {}
+    raw = analysed_raw(view)
+    base = baseline_table(view)
+    balance_rows = [{**r, "label": r.get("covariate", "") if r.get("level") in (None, "")
+                     else f"{r.get('covariate')}: {r.get('level')}"}
+                    for r in (data.get("balance") or {}).get("rows") or []]
+    hetero = []
+    for key, h in (data.get("heterogeneity") or {}).items():
+        if isinstance(h, dict):
+            hetero.append({"label": h.get("method", key), "statistic": _f(h.get("statistic"), 3),
+                           "df": h.get("df"), "p": h.get("p_value")})
+    source = data.get("source") or {}
+    run = getattr(view, "run", None) or {}
+    return {
+        "compact": compact, "q": q, "source": source, "data": data, "level": level,
+        "alpha": alpha, "flow": data.get("flow") or {}, "flow_steps": flow_steps(data.get("flow") or {}),
+        "warnings": data.get("warnings") or [], "overlap": data.get("overlap") or {},
+        "propensity": data.get("propensity") or {}, "balance": data.get("balance") or {},
+        "balance_rows": balance_rows, "baseline_header": [c for c in BASELINE_COLUMNS],
+        "baseline_rows": base.to_dict("records"), "baseline_has_raw": raw is not None,
+        "strata_rows": _strata_rows(data), "strata_info": data.get("strata_info") or {},
+        "test": data.get("test") or {}, "test_rows": _test_rows(data.get("test") or {}),
+        "effects": [e for e in effects if e], "heterogeneity": hetero,
+        "adjusted": adj, "cross": cross, "weights": data.get("cross_check_weights"),
+        "sens": sens, "e_value": sens.get("e_value") or {},
+        "gamma": sens.get("gamma_threshold_detail") or {},
+        "gamma_bounds": sens.get("gamma_bounds") or {}, "tipping": tip,
+        "benchmarks": tip.get("benchmarks") or [],
+        "negative": data.get("negative_control"), "verdict": data.get("verdict") or "",
+        "cautions": data.get("cautions") or [], "figures": figures,
+        "spec_toml": spec_toml(data), "command": source.get("command"),
+        "seed": (data.get("spec") or {}).get("seed"), "run": run,
+        "versions": (run.get("versions") or {}), "fmt": _f,
+    }

@@ -1,0 +1,129 @@
+"""The report's visual identity, and the read-only view of a result that the figures draw from.
+
+Palette: Paul Tol's "vibrant" qualitative scheme, designed to stay distinguishable under the
+common forms of colour-vision deficiency (Tol 2021, *Colour schemes*, SRON technical note
+SRON/EPS/TN/09-002, fig. 2), and his diverging "sunset" scheme for the tipping-point surface
+(same note, fig. 18). Figures are built on :class:`matplotlib.figure.Figure` directly (no
+pyplot state), rendered with the Agg canvas, and never recompute a statistic: everything they
+show comes from the result.
+
+References
+----------
+Tol, P. (2021). Colour schemes. SRON technical note SRON/EPS/TN/09-002, issue 3.2.
+"""
+
+from __future__ import annotations
+
+import io
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+
+import matplotlib
+
+matplotlib.use("Agg", force=False)  # headless: never needs a display
+
+import matplotlib.colors as mcolors  # noqa: E402
+from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: E402
+from matplotlib.figure import Figure  # noqa: E402
+
+__all__ = ["PALETTE", "EXPOSED", "REFERENCE", "ACCENT", "ALERT", "NEUTRAL", "INK", "SUNSET",
+           "new_figure", "figure_bytes", "plain", "ResultView", "view_of", "style"]
+
+#: Tol (2021) "vibrant" scheme.
+PALETTE = {"blue": "#0077BB", "cyan": "#33BBEE", "teal": "#009988", "orange": "#EE7733",
+           "red": "#CC3311", "magenta": "#EE3377", "grey": "#BBBBBB"}
+EXPOSED = PALETTE["orange"]
+REFERENCE = PALETTE["blue"]
+ACCENT = PALETTE["teal"]
+ALERT = PALETTE["magenta"]
+NEUTRAL = PALETTE["grey"]
+INK = "#2B2B2B"
+MUTED = "#6B6B6B"
+
+#: Tol (2021) "sunset" diverging scheme, centre = the null.
+SUNSET = mcolors.LinearSegmentedColormap.from_list("stratagap_sunset", [
+    "#364B9A", "#4A7BB7", "#6EA6CD", "#98CAE1", "#C2E4EF", "#EAECCC", "#FEDA8B", "#FDB366",
+    "#F67E4B", "#DD3D2D", "#A50026"])
+
+_RC = {
+    "font.family": "DejaVu Sans",  # ships with matplotlib: identical output everywhere
+    "font.size": 9.5,
+    "axes.edgecolor": MUTED,
+    "axes.labelcolor": INK,
+    "axes.titlesize": 9,
+    "axes.titlecolor": MUTED,
+    "axes.spines.top": False,
+    "axes.spines.right": False,
+    "axes.grid": True,
+    "axes.axisbelow": True,
+    "grid.color": "#E4E0D8",
+    "grid.linestyle": (0, (1, 2)),
+    "grid.linewidth": 0.8,
+    "xtick.color": MUTED,
+    "ytick.color": MUTED,
+    "legend.frameon": False,
+    "legend.fontsize": 8.5,
+    "figure.facecolor": "#FFFFFF",
+    "savefig.facecolor": "#FFFFFF",
+    "svg.fonttype": "none",      # text stays text (searchable; matplotlib escapes it)
+    "svg.hashsalt": "stratagap",  # stable element ids: same result, same SVG bytes
+}
+
+
+def plain(text) -> str:
+    """User text for a matplotlib label: ``$`` would otherwise start mathtext."""
+    return str(text).replace("$", r"\$")
+
+
+@contextmanager
+def style():
+    with matplotlib.rc_context(_RC):
+        yield
+
+
+def new_figure(title: str, subtitle: str = "", *, size=(7.2, 4.2), nrows=1, ncols=1, **kw):
+    """A Figure with our title block: bold, left-aligned title; grey subtitle on the axes."""
+    with style():
+        fig = Figure(figsize=size, layout="constrained")
+        FigureCanvasAgg(fig)
+        axes = fig.subplots(nrows, ncols, squeeze=False, **kw)
+        fig.suptitle(title, x=0.01, ha="left", fontsize=11.5, fontweight="bold", color=INK)
+        if subtitle:
+            axes[0, 0].set_title(subtitle, loc="left")
+    return fig, (axes[0, 0] if nrows * ncols == 1 else axes)
+
+
+def figure_bytes(fig: Figure, fmt: str, dpi: int = 150) -> bytes:
+    """Serialize a figure (PNG or SVG) with fixed metadata, so output is reproducible."""
+    buf = io.BytesIO()
+    meta = {"Date": None} if fmt == "svg" else {"Software": "stratagap"}
+    with style():
+        fig.savefig(buf, format=fmt, dpi=dpi, metadata=meta)
+    return buf.getvalue()
+
+
+@dataclass
+class ResultView:
+    """What the figures and the report read: the JSON dict, the per-unit arrays, the null."""
+
+    data: dict
+    arrays: dict = field(default_factory=dict)
+    null_distribution: object = None
+    null_weights: object = None
+    run: dict = field(default_factory=dict)
+
+
+def view_of(result) -> ResultView:
+    """Build a :class:`ResultView` from an AnalysisResult (or pass a view through).
+
+    A view can also be built by hand (tests, or a result read back from ``results.json``):
+    ``ResultView(data=json.load(f))`` draws every figure that needs no per-unit array.
+    """
+    if isinstance(result, ResultView):
+        return result
+    main = result.tests["main"] if getattr(result, "tests", None) else None
+    null = getattr(main, "null_distribution", None)
+    weights = getattr(main, "null_weights", None)
+    return ResultView(data=result.to_dict(), arrays=dict(getattr(result, "arrays", {}) or {}),
+                      null_distribution=null, null_weights=weights,
+                      run=dict(getattr(result, "run", {}) or {}))

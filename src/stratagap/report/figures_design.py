@@ -1,0 +1,158 @@
+"""Design figures: score overlap (figure 1) and covariate balance (figure 2).
+
+Both only draw what the result holds: the propensity scores of every prepared row, the overlap
+rule's bounds and the balance rows (Austin 2009 standardized mean differences, after adjustment
+on the before-adjustment denominator, Stuart 2010).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from matplotlib.figure import Figure
+
+from ._style import ACCENT, ALERT, EXPOSED, INK, MUTED, NEUTRAL, REFERENCE, new_figure, plain, view_of
+
+__all__ = ["plot_overlap", "plot_balance", "SMD_FLAG"]
+
+#: |SMD| above which a covariate is flagged as imbalanced (common practice).
+SMD_FLAG = 0.1
+
+
+def _group_names(data: dict) -> tuple[str, str]:
+    q = data.get("question", {})
+    return (plain(f"exposed ({q.get('exposed_value', 'exposed')})"),
+            plain(f"reference ({q.get('reference_value', 'reference')})"))
+
+
+def plot_overlap(result, *, bins: int = 40) -> Figure:
+    """Figure 1: mirrored score distributions of the two groups, with the trimming bounds.
+
+    The exposed group is drawn above the axis and the reference group below it, each as the
+    share of its own group per bin so that unequal group sizes do not hide the tails. Units set
+    aside by the overlap rule are the hatched part of each bar.
+
+    Parameters
+    ----------
+    result : AnalysisResult
+    bins : int, default 40
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    v = view_of(result)
+    score = np.asarray(v.arrays.get("score", []), dtype=float)
+    t = np.asarray(v.arrays.get("t_all", []), dtype=int)
+    keep = np.asarray(v.arrays.get("keep", np.ones(len(score), bool)), dtype=bool)
+    ov = v.data.get("overlap", {}) or {}
+    exposed_name, reference_name = _group_names(v.data)
+    auc = (v.data.get("propensity") or {}).get("auc")
+    sub = f"share of each group per score bin; c-statistic {auc:.3f}" if auc is not None else \
+        "share of each group per score bin"
+    fig, ax = new_figure("Where the two groups' propensity scores lie", sub)
+    if len(score) == 0:
+        ax.text(0.5, 0.5, "no scores recorded on this result", ha="center", transform=ax.transAxes)
+        return fig
+    lo, hi = float(np.nanmin(score)), float(np.nanmax(score))
+    pad = max((hi - lo) * 0.02, 1e-6)
+    edges = np.linspace(max(0.0, lo - pad), min(1.0, hi + pad), bins + 1)
+    width = np.diff(edges)
+    for group, sign, colour, name in ((1, 1, EXPOSED, exposed_name), (0, -1, REFERENCE, reference_name)):
+        members = t == group
+        n = max(int(members.sum()), 1)
+        kept, _ = np.histogram(score[members & keep], bins=edges)
+        aside, _ = np.histogram(score[members & ~keep], bins=edges)
+        ax.bar(edges[:-1], sign * kept / n, width=width, align="edge", color=colour, alpha=0.85,
+               edgecolor="white", linewidth=0.4, label=f"{name}, n = {int(members.sum()):,}")
+        if aside.any():
+            ax.bar(edges[:-1], sign * aside / n, bottom=sign * kept / n, width=width, align="edge",
+                   facecolor="white", edgecolor=colour, hatch="////", linewidth=0.6,
+                   label=f"{name}: set aside ({int(aside.sum()):,})")
+    ax.axhline(0, color=INK, linewidth=0.8)
+    bounds = ov.get("bounds")
+    if bounds:
+        for b in bounds:
+            ax.axvline(b, color=ALERT, linestyle=(0, (5, 2)), linewidth=1.4)
+        ax.axvspan(bounds[0], bounds[1], color=ACCENT, alpha=0.07, zorder=0,
+                   label=f"kept by the rule '{ov.get('rule', '')}': {bounds[0]:.3f} to {bounds[1]:.3f}")
+    elif ov.get("common_support"):
+        cs = ov["common_support"]
+        for b in cs:
+            ax.axvline(b, color=MUTED, linestyle=(0, (1, 1.5)), linewidth=1.2)
+        ax.plot([], [], color=MUTED, linestyle=(0, (1, 1.5)),
+                label=f"common support {cs[0]:.3f} to {cs[1]:.3f} (no trimming)")
+    top = ax.get_ylim()
+    lim = max(abs(top[0]), abs(top[1]))
+    ax.set_ylim(-lim * 1.05, lim * 1.25)
+    ax.set_yticks(ax.get_yticks())
+    ax.set_yticklabels([f"{abs(y):.0%}" for y in ax.get_yticks()])
+    ax.set_ylim(-lim * 1.05, lim * 1.25)
+    ax.text(0.005, 0.97, "exposed ↑", transform=ax.transAxes, va="top", color=EXPOSED, fontsize=8.5)
+    ax.text(0.005, 0.03, "reference ↓", transform=ax.transAxes, va="bottom", color=REFERENCE,
+            fontsize=8.5)
+    ax.set_xlabel("propensity score (estimated probability of exposure)")
+    ax.set_ylabel("share of group")
+    ax.legend(loc="upper right", fontsize=7.5)
+    return fig
+
+
+def _balance_label(row: dict) -> str:
+    level = row.get("level")
+    name = str(row.get("covariate", ""))
+    return plain(name if level in (None, "") else f"{name}: {level}")
+
+
+def plot_balance(result, *, threshold: float = SMD_FLAG) -> Figure:
+    """Figure 2: |SMD| per covariate (and dummy level) before and after adjustment.
+
+    Rows are sorted by the imbalance before adjustment; a line joins each row's two values so
+    the change reads as a movement. The dashed line marks |SMD| = 0.1 (common practice).
+
+    Parameters
+    ----------
+    result : AnalysisResult
+    threshold : float, default 0.1
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    v = view_of(result)
+    rows = list((v.data.get("balance") or {}).get("rows", []))
+    height = 1.6 + 0.26 * max(len(rows), 3)
+    fig, ax = new_figure("Covariate balance before and after adjustment on the score",
+                         "absolute standardized mean difference (after: within strata, "
+                         "same denominator as before)", size=(7.2, min(height, 14)))
+    if not rows:
+        ax.text(0.5, 0.5, "no balance rows on this result", ha="center", transform=ax.transAxes)
+        return fig
+
+    def mag(x):
+        return np.nan if x is None else abs(float(x))
+
+    rows.sort(key=lambda r: -np.nan_to_num(mag(r.get("smd_before")), nan=-1.0))
+    y = np.arange(len(rows))[::-1]
+    before = np.array([mag(r.get("smd_before")) for r in rows])
+    after = np.array([mag(r.get("smd_after")) for r in rows])
+    finite = np.concatenate([before[np.isfinite(before)], after[np.isfinite(after)], [threshold]])
+    right = float(finite.max()) * 1.12
+    ax.axvspan(0, threshold, color=ACCENT, alpha=0.08, zorder=0)
+    ax.axvline(threshold, color=INK, linestyle=(0, (4, 2)), linewidth=1.0)
+    ax.text(threshold, len(rows) - 0.3, f" {threshold:g}", color=INK, fontsize=8, va="bottom")
+    ax.hlines(y, np.fmin(before, after), np.fmax(before, after), color=NEUTRAL, linewidth=1.6)
+    ax.plot(before, y, linestyle="none", marker="o", markersize=6.5, markerfacecolor="white",
+            markeredgecolor=ALERT, markeredgewidth=1.6, label="before adjustment")
+    ax.plot(after, y, linestyle="none", marker="D", markersize=5.5, color=ACCENT,
+            label="after: within strata")
+    ax.set_yticks(y)
+    labels = ax.set_yticklabels([_balance_label(r) for r in rows], fontsize=8)
+    for lab, a in zip(labels, after):
+        if np.isfinite(a) and a > threshold:
+            lab.set_color(ALERT)
+            lab.set_fontweight("bold")
+    ax.set_xlim(0, right)
+    ax.set_ylim(-0.7, len(rows) - 0.1)
+    ax.grid(axis="y", visible=False)
+    ax.set_xlabel("|SMD|   (shaded: below the 0.1 flag; red labels: still above it after adjustment)")
+    ax.legend(loc="lower right")
+    return fig

@@ -1,0 +1,69 @@
+"""The participant-flow diagram (STROBE item 13, von Elm et al. 2007), as boxes for the report.
+
+Rows read, set aside for missing values (by column and by group), set aside by the overlap rule
+(by group) and by strata lacking a group, and the rows analysed (by group). Only the result's
+counts are shown; nothing is recounted.
+
+References
+----------
+von Elm, E. et al. (2007). The Strengthening the Reporting of Observational Studies in
+Epidemiology (STROBE) statement. Annals of Internal Medicine 147:573-577.
+"""
+
+from __future__ import annotations
+
+__all__ = ["flow_steps"]
+
+
+def _groups(counts: dict | None) -> str:
+    counts = {k: v for k, v in (counts or {}).items() if k in ("exposed", "reference")}
+    return ", ".join(f"{k} {int(v):,}" for k, v in counts.items())
+
+
+def flow_steps(flow: dict) -> list[dict]:
+    """Main boxes, each with the exclusions that leave the flow after it.
+
+    Returns
+    -------
+    list of dict
+        ``{"title", "n", "detail", "exits": [{"title", "n", "lines": [str]}]}``; the last box is
+        the analysed sample.
+    """
+    read = flow.get("rows_read")
+    used = flow.get("rows_used")
+    analysed = flow.get("rows_analysed", used)
+    missing_exit = None
+    if read is not None and used is not None:
+        by_col = {k: int(v) for k, v in (flow.get("dropped_missing_by_column") or {}).items() if v}
+        lines = [f"by column: " + ", ".join(f"{k} {v:,}" for k, v in by_col.items())] if by_col else []
+        if len(by_col) > 1:
+            lines.append("(a row can miss several columns)")
+        by_group = _groups(flow.get("dropped_missing_by_group"))
+        if by_group:
+            lines.append(f"by group: {by_group}")
+        unknown = (flow.get("dropped_missing_by_group") or {}).get("unknown")
+        if unknown:
+            lines.append(f"group not recorded: {int(unknown):,}")
+        mo = flow.get("missing_outcome_by_group") or {}
+        if any((g or {}).get("n") for g in mo.values()):
+            lines.append("missing outcome: " + ", ".join(
+                f"{k} {int(g.get('n') or 0):,} ({100 * float(g.get('share') or 0):.1f} %)"
+                for k, g in mo.items()))
+        missing_exit = {"title": f"Set aside for missing values ({flow.get('missing_policy', 'drop')})",
+                        "n": int(read) - int(used), "lines": lines}
+    steps = [{"title": "Rows read", "n": read, "detail": "", "exits": [missing_exit] if missing_exit else []}]
+    exits = []
+    trimmed = flow.get("trimmed_by_group") or {}
+    n_trim = sum(int(v) for v in trimmed.values())
+    exits.append({"title": "Set aside by the overlap rule (trimming)", "n": n_trim,
+                  "lines": [f"by group: {_groups(trimmed)}"] if trimmed else []})
+    lacking = flow.get("strata_set_aside_by_group") or {}
+    n_lack = sum(int(v) for v in lacking.values())
+    if n_lack:
+        exits.append({"title": "Set aside: strata lacking one group", "n": n_lack,
+                      "lines": [f"by group: {_groups(lacking)}"]})
+    steps.append({"title": "Complete cases", "n": used,
+                  "detail": _groups(flow.get("used_by_group")), "exits": exits})
+    steps.append({"title": "Analysed", "n": analysed,
+                  "detail": _groups(flow.get("analysed_by_group")), "exits": []})
+    return steps

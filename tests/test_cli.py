@@ -1,0 +1,86 @@
+"""The CLI: exit codes, one-line errors, outputs, the demo."""
+
+import json
+import subprocess
+import sys
+
+import pytest
+
+from stratagap.cli import main
+
+ARGS = ["--exposure", "shift", "--exposed-value", "nights", "--outcome", "systolic_bp",
+        "--covariates", "age,bmi,smoker,role", "--resamples", "200"]
+
+
+def test_analyze_writes_outputs_and_summary(shift_csv, tmp_path, capsys):
+    out = tmp_path / "out"
+    assert main(["analyze", str(shift_csv), *ARGS, "--out", str(out)]) == 0
+    printed = capsys.readouterr().out
+    assert "adjusted" in printed and "Not medical advice" in printed
+    for name in ("results.json", "balance.csv", "strata.csv", "run.json"):
+        assert (out / name).is_file(), name
+    data = json.loads((out / "results.json").read_text())
+    assert data["test"]["resamples"] == 200
+    header = (out / "balance.csv").read_text().splitlines()[0]
+    assert header == ("covariate,level,smd_before,smd_after,var_ratio_before,var_ratio_after,"
+                      "ks_before,ks_after,flagged")
+
+
+def test_analyze_refuses_non_empty_out_then_overwrites(shift_csv, tmp_path, capsys):
+    out = tmp_path / "o"
+    assert main(["analyze", str(shift_csv), *ARGS, "--out", str(out), "--quiet"]) == 0
+    assert main(["analyze", str(shift_csv), *ARGS, "--out", str(out), "--quiet"]) == 2
+    assert "--overwrite" in capsys.readouterr().err
+    assert main(["analyze", str(shift_csv), *ARGS, "--out", str(out), "--quiet",
+                 "--overwrite"]) == 0
+
+
+def test_json_format_and_quiet(shift_csv, capsys):
+    assert main(["analyze", str(shift_csv), *ARGS, "--format", "json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    assert "adjusted" in data
+    assert main(["analyze", str(shift_csv), *ARGS, "--quiet"]) == 0
+    assert capsys.readouterr().out == ""
+
+
+def test_spec_file_with_flag_override(shift_csv, tmp_path, capsys):
+    toml = tmp_path / "study.toml"
+    toml.write_text(f'data = "{shift_csv}"\nexposure = "shift"\nexposed-value = "nights"\n'
+                    'outcome = "systolic_bp"\ncovariates = ["age", "bmi", "smoker", "role"]\n'
+                    'resamples = 100\nstrata = 4\n')
+    assert main(["analyze", "--spec", str(toml), "--strata", "3", "--format", "json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    assert data["spec"]["n_strata"] == 3 and data["test"]["resamples"] == 100
+
+
+@pytest.mark.parametrize("extra, needle", [
+    (["--estimand", "atx"], "--estimand"),
+    (["--resamples", "0"], "--resamples"),
+    (["--seed", "x"], "--seed"),
+    (["--alternative", "up"], "--alternative"),
+    (["--nonsense"], "unrecognized"),
+])
+def test_bad_arguments_exit_2_with_one_line(shift_csv, capsys, extra, needle):
+    assert main(["analyze", str(shift_csv), *ARGS, *extra]) == 2
+    err = capsys.readouterr().err
+    assert needle in err and err.count("\n") == 1 and "Traceback" not in err
+
+
+def test_demo_runs_twice_in_its_own_folder(tmp_path, monkeypatch, capsys):
+    monkeypatch.chdir(tmp_path)
+    assert main(["demo", "--n", "800"]) == 0
+    printed = capsys.readouterr().out
+    assert "TRUE effect" in printed
+    assert main(["demo", "--n", "800", "--quiet"]) == 0
+    assert (tmp_path / "stratagap-demo" / "results.json").is_file()
+    truth = json.loads((tmp_path / "stratagap-demo" / "truth.json").read_text())
+    assert truth["n"] > 700
+
+
+def test_real_subprocess_bad_input_exit_code(tmp_path):
+    missing = tmp_path / "nope.csv"
+    proc = subprocess.run([sys.executable, "-m", "stratagap.cli", "analyze", str(missing), *ARGS],
+                          capture_output=True, text=True)
+    assert proc.returncode == 2
+    assert proc.stderr.count("\n") == 1 and "nope.csv" in proc.stderr
+    assert "Traceback" not in proc.stderr

@@ -1,0 +1,98 @@
+"""The whole pipeline through the Python API: contract fields, reproducibility, invariances."""
+
+import json
+
+import numpy as np
+import pytest
+
+import stratagap
+from stratagap.result import to_json
+
+from .conftest import COVARIATES
+
+
+def _get(d, dotted):
+    for part in dotted.split("."):
+        d = d[part]
+    return d
+
+
+REQUIRED = ["n_used", "crude.estimate", "adjusted.estimate", "adjusted.ci_low", "adjusted.ci_high",
+            "adjusted.measure", "test.p_value", "test.resamples", "balance.max_abs_smd_before",
+            "balance.max_abs_smd_after", "strata", "sensitivity.e_value.point",
+            "sensitivity.e_value.ci_limit", "sensitivity.gamma_threshold",
+            "sensitivity.gamma_curve", "cross_checks", "verdict", "sensitivity.tipping",
+            "flow.rows_read", "flow.rows_used", "adjusted.constant_effect", "test.engine",
+            "test.null", "cautions"]
+
+
+@pytest.mark.parametrize("field", REQUIRED)
+def test_results_json_has_contract_fields(small_result, field):
+    data = json.loads(to_json(small_result.to_dict()))
+    _get(data, field)  # KeyError fails the test
+
+
+def test_strata_list_has_counts_by_group(small_result):
+    data = small_result.to_dict()
+    assert len(data["strata"]) >= 2
+    assert sum(s["n_exposed"] + s["n_reference"] for s in data["strata"]) == data["n_used"]
+    assert data["flow"]["rows_used"] <= data["flow"]["rows_read"]
+
+
+def test_gamma_curve_and_cross_checks_are_lists_of_records(small_result):
+    data = small_result.to_dict()
+    curve = data["sensitivity"]["gamma_curve"]
+    assert curve[0]["gamma"] == 1.0 and "p_upper" in curve[0]
+    assert all({"method", "estimate", "ci_low", "ci_high"} <= set(r) for r in data["cross_checks"])
+
+
+def test_same_seed_same_bytes(shift_data):
+    kw = dict(exposure="shift", exposed_value="nights", outcome="systolic_bp",
+              covariates=COVARIATES, resamples=300, seed=9)
+    a = stratagap.analyze(shift_data, **kw).to_json()
+    b = stratagap.analyze(shift_data, **kw).to_json()
+    assert a == b
+
+
+def test_row_order_does_not_change_the_result(shift_data):
+    kw = dict(exposure="shift", exposed_value="nights", outcome="systolic_bp",
+              covariates=COVARIATES, resamples=300, seed=9)
+    a = stratagap.analyze(shift_data, **kw).to_dict()
+    shuffled = shift_data.sample(frac=1.0, random_state=3).reset_index(drop=True)
+    b = stratagap.analyze(shuffled, **kw).to_dict()
+    for key in ("adjusted", "test", "crude", "balance", "strata", "sensitivity"):
+        assert json.dumps(a[key], sort_keys=True) == json.dumps(b[key], sort_keys=True), key
+
+
+def test_batch_size_does_not_change_the_result(shift_data):
+    kw = dict(exposure="shift", exposed_value="nights", outcome="systolic_bp",
+              covariates=COVARIATES, resamples=600, seed=4)
+    a = stratagap.analyze(shift_data, batch_size=7, **kw).to_dict()
+    b = stratagap.analyze(shift_data, batch_size=600, **kw).to_dict()
+    assert a["test"] == b["test"] and a["adjusted"] == b["adjusted"]
+
+
+def test_binary_outcome_runs_with_ratio_measures(shift_data):
+    data = shift_data.assign(high_bp=(shift_data["systolic_bp"] > 130).astype(int))
+    res = stratagap.analyze(data, exposure="shift", exposed_value="nights", outcome="high_bp",
+                            covariates=COVARIATES, resamples=300, measure="rr", seed=1)
+    d = res.to_dict()
+    assert d["adjusted"]["measure"] == "risk ratio"
+    assert d["adjusted"]["mantel_haenszel"] is not None
+    assert d["test"]["sum_statistic"]["p_value"] > 0
+    assert d["adjusted"]["constant_effect"] is None
+
+
+def test_att_estimand_labels_every_output(shift_data):
+    res = stratagap.analyze(shift_data, exposure="shift", exposed_value="nights",
+                            outcome="systolic_bp", covariates=COVARIATES, resamples=200,
+                            estimand="att")
+    d = res.to_dict()
+    assert d["question"]["estimand"] == "ATT"
+    assert "ATT" in d["question"]["population"]
+
+
+def test_cautions_in_result_and_verdict(small_result):
+    d = small_result.to_dict()
+    assert any("not medical advice" in c.lower() for c in d["cautions"])
+    assert "observational" in d["verdict"].lower()
