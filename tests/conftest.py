@@ -2,9 +2,9 @@
 
 import pytest
 
-from stratagap.demo import make_shift_work_data
+from stratagap.demo import DEMO_COVARIATES, make_shift_work_data
 
-COVARIATES = ["age", "bmi", "smoker", "role"]
+COVARIATES = list(DEMO_COVARIATES)
 
 
 @pytest.fixture(scope="session")

@@ -521,3 +521,45 @@ def test_result_types_and_json():
     d = json.loads(json.dumps(p.to_dict()))
     assert d["flow"]["rows_used"] == p.flow.rows_used and d["terms"][0]["name"] == "age"
     assert p.X.dtype == np.float64 and p.X.flags.c_contiguous and p.X.shape == (len(p.t), len(p.design_names))
+
+
+def test_negative_control_and_strata_checks():
+    df = invented()
+    with pytest.raises(InputError, match="`--negative-control` column 'site' is not numeric"):
+        prepare(df, exposure="shift", outcome="sbp", covariates=["age"], negative_control="site")
+    with pytest.raises(InputError, match="`--negative-control` 'age' is also the exposure, outcome or a covariate"):
+        prepare(df, exposure="shift", outcome="sbp", covariates=["age"], negative_control="age")
+    with pytest.raises(InputError, match="`--strata-column` 'shift' is also"):
+        prepare(df, exposure="shift", outcome="sbp", covariates=["age"], strata_column="shift")
+
+
+def test_categorical_columns_with_unused_categories():
+    """Stata value labels arrive as categoricals that may list categories no row uses."""
+    df = invented()
+    df["grp"] = pd.Categorical(np.where(df["shift"] == 1, "night", "day"), categories=["day", "night", "rotating"])
+    p = prepare(df, exposure="grp", outcome="sbp", covariates=["age"], exposed_value="night")
+    assert p.exposure_levels == {"exposed": "night", "reference": "day"}
+    df["hyp"] = pd.Categorical(np.where(df["sbp"] > 125, "yes", "no"), categories=["no", "yes", "unsure"])
+    p = prepare(df, exposure="shift", outcome="hyp", covariates=["age"], outcome_event="yes")
+    assert p.outcome_type == "binary" and p.y.sum() == (df["sbp"] > 125).sum()
+
+
+def test_formula_design_row_order_invariant():
+    df = invented(300, seed=8)
+    perm = np.random.default_rng(9).permutation(300)
+    kw = dict(exposure="shift", outcome="sbp", covariates=None, formula="bs(age, df=4) + C(site) + smoker:age")
+    a = prepare(df, **kw)
+    b = prepare(df.iloc[perm], **kw)
+    np.testing.assert_array_equal(a.X, b.X)
+    np.testing.assert_array_equal(a.y, b.y)
+    assert a.design_names == b.design_names and a.to_dict() == b.to_dict()
+
+
+def test_observed_weights_separation_falls_back_with_warning():
+    rng = np.random.default_rng(0)
+    x = rng.normal(size=200)
+    observed = x > -1  # missingness perfectly predicted by x: the ML fit does not exist
+    with pytest.warns(MissingDataWarning, match="separated or did not converge; a ridge-penalized fit"):
+        w = observed_weights(x[:, None], rng.integers(0, 2, 200), observed)
+    assert np.all(np.isfinite(w)) and np.all(w[observed] >= 1.0) and np.all(w[~observed] == 0)
+    assert np.array_equal(observed_weights(x[:, None], np.zeros(200), np.ones(200, bool)), np.ones(200))

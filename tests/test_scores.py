@@ -140,10 +140,13 @@ def test_boosting_is_cross_fitted_and_reproducible():
 
 
 def test_boosting_learns_a_real_score():
+    # The data follow a logistic model, so cross-fitted boosting cannot beat it by much, but
+    # must find the signal: under no association the AUC's SE is ~0.011 at n = 3000 (Hanley &
+    # McNeil 1982), so 0.6 is about 9 SE above chance.
     X, t, names = confounded(n=3000)
     fit = fit_propensity(X, t, names, method="boosting", folds=3)
     logistic = fit_propensity(X, t, names)
-    assert fit.auc > 0.6 and abs(fit.auc - logistic.auc) < 0.05
+    assert 0.6 < fit.auc < logistic.auc + 0.02
 
 
 def test_to_dict_is_json_ready():

@@ -16,7 +16,7 @@ Hernán MA, Robins JM (2020). Causal Inference: What If. Chapman & Hall/CRC, ch.
 Stefanski LA, Boos DD (2002). The calculus of M-estimation. The American Statistician 56, 29-38.
 Robins JM, Rotnitzky A, Zhao LP (1994). Estimation of regression coefficients when some
     regressors are not always observed. JASA 89, 846-866 (augmented IPW).
-Lunceford JK, Davidian M (2004). Statistics in Medicine 23, 2937-2960, eq. 21 (AIPW for the ATE
+Lunceford JK, Davidian M (2004). Statistics in Medicine 23, 2937-2960 (AIPW for the ATE
     and its influence-function variance).
 Hahn J (1998). On the role of the propensity score in efficient semiparametric estimation of
     average treatment effects. Econometrica 66, 315-331 (efficient influence function of the ATT).
@@ -72,14 +72,19 @@ class OutcomeModel:
                 stacklevel=3,
             )
         D = D[:, self.keep]
-        family = sm.families.Binomial() if self.binary else sm.families.Gaussian()
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             try:
-                res = sm.GLM(y, D, family=family).fit(maxiter=100)
+                if self.binary:
+                    res = sm.GLM(y, D, family=sm.families.Binomial()).fit(maxiter=100)
+                else:
+                    res = sm.OLS(y, D).fit()
             except PerfectSeparationError:
                 res = None
         bad = [w for w in caught if issubclass(w.category, (PerfectSeparationWarning, ConvergenceWarning))]
+        if res is not None and self.binary:
+            f = np.asarray(res.fittedvalues)
+            bad = bad or bool(np.any((f < 1e-8) | (f > 1 - 1e-8)))  # quasi-separation
         if res is None or bad:
             warnings.warn(
                 "outcome model: the logistic fit separated or did not converge (an outcome "
@@ -120,13 +125,13 @@ def standardize_fit(y, t, X, estimand, outcome_type, interactions="all"):
 
     The population is everyone (ATE) or the exposed (ATT). Stacking the outcome model's score
     equations with the two averaging equations gives a covariance that accounts for both the
-    estimated coefficients and the sampling of the covariates (Stefanski & Boos 2002, sec. 4).
+    estimated coefficients and the sampling of the covariates (Stefanski & Boos 2002).
     """
     model = OutcomeModel(y, t, X, outcome_type, interactions)
     s = np.ones(y.size) if estimand == "ate" else t.astype(float)
     D1, D0 = model.design(1.0, X), model.design(0.0, X)
     m1, m0 = model.mean(D1), model.mean(D0)
-    mu1 = np.sum(s * m1) / np.sum(s)  # g-formula: Robins 1986; What If eq. 13.1
+    mu1 = np.sum(s * m1) / np.sum(s)  # g-formula: Robins 1986; What If §13.3
     mu0 = np.sum(s * m0) / np.sum(s)
     n, q = model.D.shape
     psi = np.column_stack([model.equations(), s * (m1 - mu1), s * (m0 - mu0)])
@@ -143,7 +148,7 @@ def standardize_fit(y, t, X, estimand, outcome_type, interactions="all"):
 def aipw_fit(y, t, X, e, estimand, outcome_type):
     """Augmented IPW means and their influence-function covariance.
 
-    ATE (Lunceford & Davidian 2004, eq. 21):
+    ATE (Lunceford & Davidian 2004):
     ``mu1 = mean(m1 + t (y - m1) / e)``, ``mu0 = mean(m0 + (1 - t)(y - m0) / (1 - e))``.
     ATT (Hahn 1998; Mercatanti & Li 2014):
     ``tau = [sum t (y - m0) - sum (1 - t) e/(1 - e) (y - m0)] / sum t``, i.e.
@@ -157,7 +162,7 @@ def aipw_fit(y, t, X, e, estimand, outcome_type):
     m0 = model.mean(model.design(0.0, X))
     n = y.size
     if estimand == "ate":
-        a1 = m1 + t * (y - m1) / e  # Lunceford & Davidian 2004, eq. 21
+        a1 = m1 + t * (y - m1) / e  # Lunceford & Davidian 2004
         a0 = m0 + (1 - t) * (y - m0) / (1 - e)
         mu1, mu0 = a1.mean(), a0.mean()
         phi = np.column_stack([a1 - mu1, a0 - mu0])

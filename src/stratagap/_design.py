@@ -213,11 +213,12 @@ def _plain_design(frame, covariates):
     for c in covariates:
         s = frame[c]
         if is_categorical(s):
-            levels = _sorted_levels(s.dropna().unique())
-            refs[c] = fmt(levels[0])
-            text = s.astype(object).map(fmt).to_numpy()
-            for i, lev in enumerate(levels):
-                v = (text == fmt(lev)).astype(np.float64)
+            codes, uniques = pd.factorize(s, use_na_sentinel=True)
+            order = _sorted_levels(range(len(uniques)), list(uniques))
+            refs[c] = fmt(uniques[order[0]])
+            for i, k in enumerate(order):
+                v = (codes == k).astype(np.float64)
+                lev = uniques[k]
                 name = f"{c}[{fmt(lev)}]"
                 if i == 0:
                     terms.append(BalanceTerm(name, c, fmt(lev), "binary", None, v))
@@ -301,12 +302,12 @@ def _kind(v) -> str:
     return "binary" if np.isin(u, (0.0, 1.0)).all() else "continuous"
 
 
-def _sorted_levels(values) -> list:
-    vals = list(values)
+def _sorted_levels(index, values) -> list:
+    """``index`` sorted by ``values`` (natural order; by text form when types do not compare)."""
     try:
-        return sorted(vals)
+        return sorted(index, key=lambda i: values[i])
     except TypeError:
-        return sorted(vals, key=fmt)
+        return sorted(index, key=lambda i: fmt(values[i]))
 
 
 def _first_line(err) -> str:

@@ -155,16 +155,21 @@ def _p_two_sided(A, C, a_null, c_null, tau, tie):
     return out
 
 
-def _p_two_sided_exact(A, C, a_null, c_null, prob, tau, tie):
-    """Two-sided exact p-values from an enumerated null with probabilities ``prob``."""
+def _p_two_sided_exact(A, C, a_null, c_null, tau, tie):
+    """Two-sided exact p-values over all ``m`` equally likely enumerated assignments.
+
+    Counts are divided once (``count / m``), so a p-value equal to alpha is not pushed across
+    it by summing ``m`` rounded probabilities.
+    """
     tau = np.atleast_1d(np.asarray(tau, dtype=float))
+    m = a_null.size
     out = np.empty(tau.size)
     for i, tt in enumerate(tau):
         obs = A - tt * C
         null = a_null - tt * c_null
-        gamma = tie(np.atleast_1d(obs), null[None, :])[0]
-        p_ge = prob[null >= obs - gamma].sum()
-        p_le = prob[null <= obs + gamma].sum()
+        gamma = tie(np.atleast_1d(obs), null[None, :])[0, 0]
+        p_ge = np.count_nonzero(null >= obs - gamma) / m
+        p_le = np.count_nonzero(null <= obs + gamma) / m
         out[i] = min(1.0, 2 * min(p_ge, p_le))
     return out
 
@@ -276,14 +281,14 @@ def constant_effect(y, t, X, labels, *, estimand, alpha=0.05, resamples=10000, s
     ----------
     Rosenbaum (2002), Statistical Science 17, 286-327.
     """
-    from . import effects as _effects  # input checks shared with the other estimators
+    from . import _estimate as _est  # input checks shared with the other estimators
     from . import permutation as _perm
 
-    alpha = _effects._check_alpha(alpha)
-    estimand = _effects._check_estimand(estimand)
-    y, t = _effects._check_yt(y, t)
-    X = _effects._check_X(X, len(y))
-    labels = _effects._check_labels(labels, len(y))
+    alpha = _est._check_alpha(alpha)
+    estimand = _est._check_estimand(estimand)
+    y, t = _est._check_yt(y, t)
+    X = _est._check_X(X, len(y))
+    labels = _est._check_labels(labels, len(y))
     seed = check_seed(seed)
     if engine not in ("auto", "monte_carlo", "exact", "normal"):
         raise InputError(f"`engine` must be one of auto, monte_carlo, exact, normal; got "
@@ -293,7 +298,7 @@ def constant_effect(y, t, X, labels, *, estimand, alpha=0.05, resamples=10000, s
                          "outcome has no constant additive effect: use the risk difference")
     keep = labels >= 0
     y, t, X, labels = y[keep], t[keep], X[keep], labels[keep]
-    _effects._strata(t, labels)  # every stratum holds both groups
+    _est._strata(t, labels)  # every stratum holds both groups
     tf = t.astype(float)
     r_y = np.asarray(_perm.residualize(y, X, labels), dtype=float)  # Rosenbaum 2002
     r_t = np.asarray(_perm.residualize(tf, X, labels), dtype=float)
@@ -362,18 +367,18 @@ def _engine_pvalues(perm, values, tf, labels, estimand, engine, resamples, seed,
                          f"(limit {exact.MAX_ASSIGNMENTS:,}); use engine 'monte_carlo'")
     if engine == "normal":
         return "normal", lambda tau: _p_normal(A, C, V, tau), None, 0
-    totals = np.stack([np.bincount(codes, weights=values[:, j], minlength=len(n))
-                       for j in range(2)])
     if engine == "exact":
+        totals = np.stack([np.bincount(codes, weights=values[:, j], minlength=len(n))
+                           for j in range(2)])
         sums = exact.enumerate_exposed_sums(values, tf.astype(np.int64), codes, len(n))
-    else:
-        sums = perm.null_exposed_sums(values, tf.astype(np.int8), labels, resamples, seed,
-                                      batch_size)
-    a_null = _stat_from_sums(sums[0], totals[0], n1, n0, w)
-    c_null = _stat_from_sums(sums[1], totals[1], n1, n0, w)
-    if engine == "exact":
-        prob = np.full(a_null.size, 1.0 / a_null.size)
-        return ("exact", lambda tau: _p_two_sided_exact(A, C, a_null, c_null, prob, tau, _tie),
+        a_null = _stat_from_sums(sums[0], totals[0], n1, n0, w)
+        c_null = _stat_from_sums(sums[1], totals[1], n1, n0, w)
+        return ("exact", lambda tau: _p_two_sided_exact(A, C, a_null, c_null, tau, _tie),
                 _tie, int(a_null.size))
+    # the core engine's shuffles, shared by both columns (rows sorted by r_y first, so the
+    # shuffles of r_y are those of the core test with the same seed)
+    _, null = perm.null_statistics(values, tf.astype(np.int8), labels, estimand=estimand,
+                                   resamples=resamples, seed=seed, batch_size=batch_size)
+    a_null, c_null = null[0], null[1]
     return ("monte_carlo", lambda tau: _p_two_sided(A, C, a_null, c_null, tau, _tie), _tie,
             int(resamples))

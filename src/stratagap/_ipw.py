@@ -6,7 +6,7 @@ turns them into a difference, risk ratio or odds ratio.
 
 The score model is refitted here (logistic, intercept plus ``X``, maximum likelihood with
 statsmodels) so that the logistic score equations stacked under the weighted-mean equations are
-the equations that were actually solved (Lunceford & Davidian 2004, section 3.2).
+the equations that were actually solved (Lunceford & Davidian 2004).
 
 References
 ----------
@@ -88,21 +88,21 @@ def fit_logistic(Z: np.ndarray, t: np.ndarray, what: str) -> tuple[np.ndarray, n
 def sandwich(psi: np.ndarray, A: np.ndarray) -> np.ndarray:
     """Empirical sandwich ``A^{-1} B A^{-T} / n`` with ``B = psi' psi / n`` (Stefanski & Boos 2002)."""
     n = psi.shape[0]
-    B = psi.T @ psi / n  # Stefanski & Boos 2002, eq. 5 (B_n)
+    B = psi.T @ psi / n  # Stefanski & Boos 2002: B_n
     Ainv = np.linalg.inv(A)
-    return Ainv @ B @ Ainv.T / n  # Stefanski & Boos 2002, eq. 6
+    return Ainv @ B @ Ainv.T / n  # Stefanski & Boos 2002: sandwich
 
 
 def _weight_parts(e: np.ndarray, t: np.ndarray, estimand: str):
     """Hájek weights and d log w / d e for each group (before truncation)."""
     if estimand == "ate":
-        w1 = t / e  # Lunceford & Davidian 2004, eq. 9: exposed weight 1/e
+        w1 = t / e  # Lunceford & Davidian 2004: exposed weight 1/e
         w0 = (1 - t) / (1 - e)  # reference weight 1/(1-e)
         g1 = -1.0 / e
         g0 = 1.0 / (1 - e)
     else:
         w1 = t.astype(float)  # ATT: the exposed are the target population, weight 1
-        w0 = (1 - t) * e / (1 - e)  # Reifeis & Hudgens 2022, eq. 1: odds weight e/(1-e)
+        w0 = (1 - t) * e / (1 - e)  # Reifeis & Hudgens 2022: odds weight e/(1-e)
         g1 = np.zeros_like(e)
         g0 = 1.0 / (e * (1 - e))
     return w1, w0, g1, g0
@@ -143,7 +143,7 @@ def ipw_equations(theta, y, t, Z, estimand, clip_limits=None):
         w0 = np.where(t == 0, np.clip(w0, *clip_limits), 0.0)
     return np.column_stack([
         Z * (t - e)[:, None],  # logistic score equations
-        w1 * (y - mu1),  # Hájek mean of the exposed (Lunceford & Davidian 2004, eq. 10)
+        w1 * (y - mu1),  # Hájek mean of the exposed (Lunceford & Davidian 2004)
         w0 * (y - mu0),  # Hájek mean of the reference group
     ])
 
@@ -180,7 +180,7 @@ def ipw_bread(theta, y, t, Z, estimand, clip_limits=None):
 
 def kish_ess(w: np.ndarray) -> float:
     """Kish effective sample size ``(sum w)^2 / sum w^2``."""
-    return float(np.sum(w) ** 2 / np.sum(w**2))  # Kish 1965, eq. 11.7.7
+    return float(np.sum(w) ** 2 / np.sum(w**2))  # Kish 1965
 
 
 def weight_summary(w: np.ndarray, t: np.ndarray) -> dict:
@@ -250,7 +250,7 @@ def ipw_fit(y, t, score_fit, estimand, truncate=None):
     w, clipped, bounds = raw, np.zeros(n, dtype=bool), None
     if truncate is not None:
         w, clipped, bounds = truncate_weights(raw, t, truncate)
-    mu1 = np.sum(w * t * y) / np.sum(w * t)  # Hájek normalized mean (Lunceford & Davidian 2004, eq. 10)
+    mu1 = np.sum(w * t * y) / np.sum(w * t)  # Hájek normalized mean (Lunceford & Davidian 2004)
     mu0 = np.sum(w * (1 - t) * y) / np.sum(w * (1 - t))
     # Score treated as known: the two mean equations alone (reported beside, for comparison).
     psi_mu = np.column_stack([w * t * (y - mu1), w * (1 - t) * (y - mu0)])

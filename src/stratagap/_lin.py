@@ -107,7 +107,7 @@ def _screen_columns(Xc: np.ndarray, t: np.ndarray, names):
 def difference_of_means(y: np.ndarray, t: np.ndarray):
     """``(tau, cov of (a, tau), reason)`` for the plain within-stratum difference of means.
 
-    Neyman variance ``s1^2/n1 + s0^2/n0`` (Imbens & Rubin 2015, eq. 6.18); when a group has a
+    Neyman variance ``s1^2/n1 + s0^2/n0`` (Imbens & Rubin 2015, ch. 6); when a group has a
     single unit its variance is replaced by the pooled within-stratum variance
     ``((n1-1) s1^2 + (n0-1) s0^2) / (n - 2)`` (equal variances assumed for that stratum only);
     with one unit in each group the variance is not estimable (NaN).
@@ -126,7 +126,7 @@ def difference_of_means(y: np.ndarray, t: np.ndarray):
         v1 = v0 = np.nan
         note = "one unit per group: variance not estimable within the stratum"
     var_a = v0 / n0
-    cov = np.array([[var_a, -var_a], [-var_a, v1 / n1 + v0 / n0]])  # Imbens & Rubin 2015, eq. 6.18
+    cov = np.array([[var_a, -var_a], [-var_a, v1 / n1 + v0 / n0]])  # Imbens & Rubin 2015, ch. 6
     return a, tau, cov, note
 
 

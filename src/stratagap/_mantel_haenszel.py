@@ -18,7 +18,14 @@ Biometrics 45, 1323-1324.
 
 from __future__ import annotations
 
+import math
+import warnings
+
 import numpy as np
+from scipy import stats
+
+from ._errors import InputError, ModelWarning
+from ._estimate import Estimate, _check_alpha, _check_labels, _check_yt
 
 
 def tables(y: np.ndarray, t: np.ndarray, labels: np.ndarray) -> np.ndarray:
@@ -44,7 +51,7 @@ def mh_estimates(cells: np.ndarray) -> dict:
     N = n1 + n0
     N = np.where(N > 0, N, 1.0)
     with np.errstate(divide="ignore", invalid="ignore"):
-        # Risk difference: MH weights n1 n0 / N (Greenland & Robins 1985, eq. 3).
+        # Risk difference: MH weights n1 n0 / N (Greenland & Robins 1985).
         W = n1 * n0 / N
         rd = np.sum(a * n0 / N - c * n1 / N) / W.sum()
         # Sato 1989: variance consistent in sparse and large strata.
@@ -52,12 +59,12 @@ def mh_estimates(cells: np.ndarray) -> dict:
         Q = (a * (n0 - c) + c * (n1 - a)) / (2.0 * N)
         var_rd = (rd * P.sum() + Q.sum()) / W.sum() ** 2
 
-        # Risk ratio: Greenland & Robins 1985, eq. 13 (estimate) and eq. 14 (variance of log RR).
+        # Risk ratio and the variance of its log: Greenland & Robins 1985.
         R_rr, S_rr = np.sum(a * n0 / N), np.sum(c * n1 / N)
         log_rr = np.log(R_rr) - np.log(S_rr)
         var_log_rr = np.sum((n1 * n0 * (a + c) - a * c * N) / N ** 2) / (R_rr * S_rr)
 
-        # Odds ratio: Mantel & Haenszel 1959; variance Robins, Breslow & Greenland 1986, eq. 5.
+        # Odds ratio: Mantel & Haenszel 1959; variance Robins, Breslow & Greenland 1986.
         R, S = a * d / N, b * c / N
         Pn, Qn = (a + d) / N, (b + c) / N
         Rs, Ss = R.sum(), S.sum()
@@ -66,3 +73,52 @@ def mh_estimates(cells: np.ndarray) -> dict:
                       + np.sum(Qn * S) / (2 * Ss ** 2))
     return {"rd": (float(rd), float(var_rd)), "log_rr": (float(log_rr), float(var_log_rr)),
             "log_or": (float(log_or), float(var_log_or))}
+
+
+def mantel_haenszel(y, t, labels, *, alpha=0.05) -> dict:
+    """Mantel-Haenszel common risk difference, risk ratio and odds ratio (binary outcomes).
+
+    Returns
+    -------
+    dict with keys ``risk_difference``, ``risk_ratio``, ``odds_ratio``, each an
+    :class:`Estimate`. These are conditional, common-effect measures (they assume one effect
+    shared by every stratum); the odds ratio is not collapsible, so it need not match a
+    marginal odds ratio. Variances: risk difference Sato (1989); log risk ratio Greenland &
+    Robins (1985); log odds ratio Robins, Breslow & Greenland (1986). Ratio CIs are
+    ``exp(log estimate +- z se)``; ``se`` is on the log scale for them.
+
+    References
+    ----------
+    See :mod:`stratagap._mantel_haenszel`.
+    """
+    alpha = _check_alpha(alpha)
+    y, t = _check_yt(y, t)
+    labels = _check_labels(labels, len(y))
+    if not np.all(np.isin(y, (0.0, 1.0))):
+        raise InputError("Mantel-Haenszel measures need a binary (0/1) outcome; the outcome has "
+                         "other values")
+    cells = tables(y, t, labels)
+    if len(cells) == 0:
+        raise InputError("no stratum left (every label is -1); check the strata step")
+    res = mh_estimates(cells)
+    z = stats.norm.ppf(1 - alpha / 2)
+    pop = f"{int(cells.sum())} units in {len(cells)} strata"
+    out = {}
+    rd, var = res["rd"]
+    se = math.sqrt(var) if var >= 0 else math.nan
+    z = float(z)
+    out["risk_difference"] = Estimate(rd, se, rd - z * se, rd + z * se, "risk difference",
+                                      "conditional common effect", pop,
+                                      "Mantel-Haenszel risk difference; Sato 1989 variance", alpha)
+    for key, name, cite in (("log_rr", "risk_ratio", "Greenland & Robins 1985 variance"),
+                            ("log_or", "odds_ratio", "Robins, Breslow & Greenland 1986 variance")):
+        lv, var = res[key]
+        se = math.sqrt(var) if np.isfinite(var) and var >= 0 else math.nan
+        if not np.isfinite(lv):
+            warnings.warn(f"Mantel-Haenszel {name.replace('_', ' ')} is not finite (zero cells "
+                          "in every stratum)", ModelWarning, stacklevel=2)
+        out[name] = Estimate(math.exp(lv) if np.isfinite(lv) else math.nan, se,
+                             math.exp(lv - z * se), math.exp(lv + z * se),
+                             name.replace("_", " "), "conditional common effect", pop,
+                             f"Mantel-Haenszel {name.replace('_', ' ')}; {cite}", alpha, "log")
+    return out

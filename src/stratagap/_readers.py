@@ -14,6 +14,7 @@ import io
 from collections import Counter
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from ._errors import InputError
@@ -31,6 +32,7 @@ _LABELS = {"csv": "CSV/text", "parquet": "Parquet", "stata": "Stata .dta", "xpor
 _SUGGESTED_SUFFIX = {"csv": ".csv", "parquet": ".parquet", "stata": ".dta", "xport": ".xpt"}
 _DELIMITERS = (",", ";", "\t")
 _SNIFF_BYTES = 64 * 1024
+_IBM_ZERO = 16.0 ** -65  # what pandas returns for an IBM-float zero
 
 
 def read_table(path, *, encoding: str | None = None) -> pd.DataFrame:
@@ -181,8 +183,21 @@ def _read_stata(p: Path, encoding: str | None) -> pd.DataFrame:
 
 
 def _read_xport(p: Path, encoding: str | None) -> pd.DataFrame:
+    with open(p, "rb") as fh:
+        version8 = fh.read(32).startswith(b"HEADER RECORD*******LIBV8")
+    if version8:  # pandas reads XPORT version 5 only
+        try:
+            import pyreadstat
+        except ImportError:
+            raise InputError(f"input file '{p}' is SAS transport version 8, which pandas cannot read; "
+                             "export it as XPORT version 5, or install pyreadstat") from None
+        try:
+            return pyreadstat.read_xport(str(p), encoding=encoding)[0]
+        except Exception as err:
+            raise InputError(f"input file '{p}' could not be read as SAS transport ({_first_line(err)}); "
+                             "export it again as XPORT version 5") from None
     try:
-        return pd.read_sas(p, format="xport", encoding=encoding or "utf-8")
+        table = pd.read_sas(p, format="xport", encoding=encoding or "utf-8")
     except UnicodeDecodeError:
         raise InputError(f"input file '{p}' has text that is not {encoding or 'UTF-8'}; "
                          "pass --encoding (e.g. --encoding latin-1)") from None
@@ -192,6 +207,15 @@ def _read_xport(p: Path, encoding: str | None) -> pd.DataFrame:
     except Exception as err:
         raise InputError(f"input file '{p}' could not be read as SAS transport ({_first_line(err)}); "
                          "export it again as XPORT") from None
+    # pandas decodes the IBM float zero (all bytes 0) as +-16**-65 instead of 0; undo that, since
+    # 16**-65 is the smallest IBM magnitude and never a real data value.
+    for col in table.columns:
+        if pd.api.types.is_float_dtype(table[col]):
+            v = table[col].to_numpy()
+            zero = np.abs(v) == _IBM_ZERO
+            if zero.any():
+                table[col] = np.where(zero, 0.0, v)
+    return table
 
 
 def _check_duplicates(p: Path, names: list[str]) -> None:

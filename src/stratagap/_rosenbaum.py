@@ -40,7 +40,7 @@ DEFAULT_GAMMAS = (1.0, 1.1, 1.2, 1.3, 1.5, 1.75, 2.0, 2.5, 3.0, 4.0, 5.0, 7.5, 1
 GAMMA_CAP = 1e3
 #: Cells of the (class size x count) table above which the noncentral hypergeometric moments of
 #: a stratum switch from exact sums to the large-stratum approximation.
-EXACT_MOMENT_CELLS = 3_000_000
+EXACT_MOMENT_CELLS = 500_000
 #: Multiply-adds of the exact convolution above which the binary bound uses the normal approximation.
 EXACT_CONVOLUTION_BUDGET = 1e8
 
@@ -108,7 +108,8 @@ class SensitivityValue:
         The same from the separable value (upper end of the Gamma bracket; equals `gamma` for
         the binary methods).
     flag : str
-        "ok", "not significant at Gamma=1" or "> cap" (for `gamma`).
+        "ok", "not significant at Gamma=1" or "> cap" (for `gamma`); "ok (the bound jumps across
+        alpha at this Gamma)" when the bound is discontinuous at the root (separable end only).
     flag_separable : str
     alpha : float
         The one-sided level used; `alpha_note` says whether it is alpha or alpha/2 per side.
@@ -128,6 +129,7 @@ class SensitivityValue:
     statistic: str
     direction: str
     estimand: str
+    moments: str = "exact"
 
     def to_dict(self) -> dict:
         return _jsonable({k: getattr(self, k) for k in self.__dataclass_fields__})
@@ -141,9 +143,6 @@ class _Design:
     const: float = 0.0                           # T = sum coef * S + const
     observed: float = 0.0
     n_strata: int = 0
-    binary: bool = False
-    raw: list = field(default_factory=list)      # [(n, n1, m)] per stratum, binary path only
-    t_count: float = 0.0                         # observed exposed events (binary path)
 
 
 def _check(values, t, labels, estimand, statistic, direction):
@@ -208,7 +207,7 @@ def _design(values, t, labels, estimand, statistic, sign):
         V = np.stack([v_sorted[starts[s]:starts[s + 1]] for s in members])
         d.groups.append((n, n1, V))
         d.coef.append(coef[members])
-    return d, n_s, n1_s, inv, v
+    return d
 
 
 # ----------------------------------------------------------------------------- Fisher NCH
@@ -236,8 +235,9 @@ def _nch_log_pmf(M, K, N, gamma, cache=None):
         if cache is not None:
             cache[key] = base
     logw = base + x[None, :] * math.log(gamma)
-    logp = logw - special.logsumexp(logw, axis=1, keepdims=True)
-    return x, logp
+    logw -= logw.max(axis=1, keepdims=True)
+    logw -= np.log(np.exp(logw).sum(axis=1, keepdims=True))
+    return x, logw
 
 
 def _nch_moments(M, K, N, gamma, cache=None):
@@ -256,7 +256,11 @@ def _nch_moments(M, K, N, gamma, cache=None):
         x, logp = _nch_log_pmf(M, K, N2, g2, cache)
         p = np.exp(logp)
         mean = p @ x
-        var = np.einsum("kx,kx->k", p, (x[None, :] - mean[:, None]) ** 2)
+        var = np.maximum(p @ (x * x) - mean * mean, 0.0)
+        # recompute the variance about the mean where cancellation could bite (mean^2 >> var)
+        bad = var < 1e-8 * mean * mean
+        if bad.any():
+            var[bad] = np.einsum("kx,kx->k", p[bad], (x[None, :] - mean[bad, None]) ** 2)
         exact = True
     else:
         mean, var = _nch_moments_large(M, K, N2, g2)
@@ -324,7 +328,10 @@ def _cut_moments(n, n1, V, gamma, cache=None):
     qmax, qmin = np.maximum(q1, q0), np.minimum(q1, q0)
     kk = K * Kc / n
     var_hi = qmax * ss_tot + np.maximum(VX - qmax * kk, 0.0) * d2max
-    var_lo = np.minimum(qmin * ss_tot, qmin * ss_tot + (VX - qmin * kk) * d2max)
+    # a class of one unit: D = (n/(n-1)) (v_i - vbar) for that unit i, so D^2 has a positive floor
+    dev2 = ((V - V.mean(axis=1, keepdims=True)) ** 2).min(axis=1, keepdims=True) * (n / (n - 1.0)) ** 2
+    d2min = np.where((K == 1) | (Kc == 1), np.minimum(dev2, d2max), 0.0)
+    var_lo = np.minimum(qmin * ss_tot + (VX - qmin * kk) * d2min, qmin * ss_tot + (VX - qmin * kk) * d2max)
     return mu, var, var_hi, np.maximum(var_lo, 0.0), exact
 
 
@@ -361,12 +368,12 @@ def _bracket_p(d, gamma, cache=None):
 
 def _normal_sf(diff, var):
     if var <= 0.0:
-        return 0.0 if diff > 0 else 1.0
+        return 1.0  # no spread left to bound: report the uninformative bound, as the normal engine does
     return float(stats.norm.sf(diff / math.sqrt(var)))
 
 
 # ----------------------------------------------------------------------------- binary exact
-def _binary_setup(values, t, labels, sign, statistic):
+def _binary_setup(values, t, labels, sign):
     _, inv = np.unique(labels, return_inverse=True)
     y = values if sign > 0 else 1.0 - values            # "less": count exposed non-events
     n = np.bincount(inv)
@@ -392,8 +399,10 @@ def _convolution_cost(raw):
         span = min(m, n1) - max(0, n1 - (n - m))
         if span == 1:
             cost += total_len * (k + 1)
+        elif span > 1 and k == 1:
+            cost += total_len * span
         elif span > 1:
-            cost += (k * span) ** 2 + total_len * k * span
+            cost += (k * span) ** 2 + total_len * k * span  # repeated squaring, then one convolution
         total_len += k * span
     return cost
 
@@ -450,17 +459,17 @@ class _Bounder:
         values, t, labels = _check(values, t, labels, estimand, statistic, direction)
         self.statistic, self.estimand = statistic, estimand
         if direction == "auto":
-            d, *_ = _design(values, t, labels, estimand, statistic, 1.0)
+            d = _design(values, t, labels, estimand, statistic, 1.0)
             null_mean = sum(c @ _perm_moments(n, n1, V)[0] for (n, n1, V), c in zip(d.groups, d.coef))
             direction = "greater" if d.observed - d.const >= null_mean else "less"
         self.direction = direction
         sign = 1.0 if direction == "greater" else -1.0
         self.binary = statistic == "sum" and np.isin(values, (0.0, 1.0)).all()
-        self.design, *_ = _design(values, t, labels, estimand, statistic, sign)
+        self.design = _design(values, t, labels, estimand, statistic, sign)
         self.moments = "exact"
         self._cache = {}
         if self.binary:
-            self.raw, self.count = _binary_setup(values, t, labels, sign, statistic)
+            self.raw, self.count = _binary_setup(values, t, labels, sign)
             self.method = "exact" if _convolution_cost(self.raw) <= EXACT_CONVOLUTION_BUDGET else "normal_binary"
         else:
             self.method = "bracket"
@@ -548,7 +557,11 @@ def _root(f, alpha, cap):
         return 1.0, "ok"
     lg = optimize.brentq(lambda x: f(math.exp(x)) - alpha, 0.0, math.log(cap), xtol=1e-14, rtol=1e-14,
                          maxiter=200)
-    return math.exp(lg), "ok"
+    gamma = math.exp(lg)
+    if abs(f(gamma) - alpha) > 1e-8:
+        # the separable end can jump when the maximizing vertex changes; the root is that jump
+        return gamma, "ok (the bound jumps across alpha at this Gamma)"
+    return gamma, "ok"
 
 
 def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_difference", direction="auto",
@@ -591,4 +604,4 @@ def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_diff
     g_sep, flag_sep = _root(lambda g: b(g)[1], level, cap)
     return SensitivityValue(gamma=g_up, gamma_separable=g_sep, flag=flag_up, flag_separable=flag_sep,
                             alpha=level, alpha_note=note, cap=cap, p_at_gamma=b(g_up)[0], method=b.method,
-                            statistic=statistic, direction=b.direction, estimand=estimand)
+                            statistic=statistic, direction=b.direction, estimand=estimand, moments=b.moments)

@@ -165,7 +165,7 @@ def _run_analyze(args) -> int:
 
 
 def _run_demo(args) -> int:
-    from .demo import make_shift_work_data, true_effects
+    from .demo import DEMO_COVARIATES, make_shift_work_data, true_effects
     from .output import prepare_folder, write_atomic, write_result
     from .pipeline import analyze
     from .summary import render_summary
@@ -189,7 +189,7 @@ def _run_demo(args) -> int:
               "command": "stratagap " + " ".join(sys.argv[1:]), "invented": True}
     try:
         result = analyze(public, exposure="shift", exposed_value="nights", outcome="systolic_bp",
-                         covariates=["age", "bmi", "smoker", "role"],
+                         covariates=list(DEMO_COVARIATES),
                          negative_control="hearing_db", seed=seed, progress=progress,
                          source=source)
     finally:

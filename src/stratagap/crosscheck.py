@@ -39,6 +39,7 @@ Cole SR, Hernán MA (2008). American Journal of Epidemiology 168, 656-664 (weigh
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import asdict, dataclass, field
 
@@ -60,6 +61,26 @@ __all__ = [
 ]
 
 _MEASURES = ("difference", "rr", "or")
+_BLAS = None
+#: Marginal risks closer than this to 0 or 1 leave ratios undefined (a group with no events).
+_TINY = 1e-8
+
+
+def _one_blas_thread(func):
+    """Run the small model fits with one BLAS thread: much faster for n x (few) designs on a
+    busy machine, and reproducible (BLAS sums do not depend on the thread count)."""
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        global _BLAS
+        if _BLAS is None:
+            from threadpoolctl import ThreadpoolController  # installed with scikit-learn
+
+            _BLAS = ThreadpoolController()
+        with _BLAS.limit(limits=1, user_api="blas"):
+            return func(*args, **kwargs)
+
+    return wrapper
 
 
 def _num(x):
@@ -237,12 +258,12 @@ def _contrast(mu, cov, measure, alpha):
         se = float(np.sqrt(g @ cov @ g))
         return est, se, float(est - z * se), float(est + z * se), "difference"
     if measure == "rr":
-        if not (mu1 > 0 and mu0 > 0):
+        if not (mu1 > _TINY and mu0 > _TINY):
             return math.nan, math.nan, math.nan, math.nan, "log ratio"
         g = np.array([1.0 / mu1, -1.0 / mu0])  # d log(mu1/mu0)
         log_est = math.log(mu1 / mu0)
     else:
-        if not (0 < mu1 < 1 and 0 < mu0 < 1):
+        if not (_TINY < mu1 < 1 - _TINY and _TINY < mu0 < 1 - _TINY):
             return math.nan, math.nan, math.nan, math.nan, "log ratio"
         g = np.array([1.0 / (mu1 * (1 - mu1)), -1.0 / (mu0 * (1 - mu0))])  # d log OR
         log_est = math.log(mu1 / (1 - mu1)) - math.log(mu0 / (1 - mu0))
@@ -254,7 +275,7 @@ def _row(method, fit, *, measure, alpha, estimand, label, se_method, notes=(), d
     est, se, lo, hi, scale = _contrast(fit["mu"], fit["cov"], measure, alpha)
     notes = list(notes)
     if not math.isfinite(est):
-        notes.append("a marginal mean is outside (0, 1), so the ratio is undefined")
+        notes.append("a marginal risk is (almost) 0 or 1, so the ratio is undefined")
     return CrossCheckRow(
         method=method, estimate=est, se=se, ci_low=lo, ci_high=hi, measure=measure,
         se_scale=scale, estimand=label, estimand_kind="marginal",
@@ -269,6 +290,7 @@ def _label(estimand, estimand_label):
 
 
 # ----------------------------------------------------------------------------- public API
+@_one_blas_thread
 def ipw(y, t, X, *, estimand, outcome_type, alpha=0.05, measure="difference", truncate=None,
         estimand_label=None):
     """Hájek IPW estimate with the stacked-equation (M-estimation) standard error.
@@ -295,7 +317,7 @@ def ipw(y, t, X, *, estimand, outcome_type, alpha=0.05, measure="difference", tr
 
     Notes
     -----
-    Stacked equations (Lunceford & Davidian 2004, sec. 3.2): ``Z (t - e(Z beta)) = 0``,
+    Stacked equations (Lunceford & Davidian 2004): ``Z (t - e(Z beta)) = 0``,
     ``w1 (y - mu1) = 0``, ``w0 (y - mu0) = 0``; covariance ``A^{-1} B A^{-T} / n`` with the
     analytic derivative ``A``. With truncation the percentile limits are treated as fixed.
     """
@@ -352,13 +374,14 @@ def _diagnostics(fit, t, estimand, truncate):
     )
 
 
+@_one_blas_thread
 def aipw(y, t, X, *, estimand, outcome_type, alpha=0.05, measure="difference", score=None,
          estimand_label=None):
     """Doubly robust augmented IPW estimate with an influence-function standard error.
 
     Outcome regressions are fitted separately in each group (OLS for continuous, logistic GLM
     for binary outcomes); the score is the logistic refit on ``[1, X]`` unless ``score`` is given.
-    ATE: the usual augmented estimator (Lunceford & Davidian 2004, eq. 21). ATT:
+    ATE: the usual augmented estimator (Lunceford & Davidian 2004). ATT:
     ``[sum t (y - m0) - sum (1-t) e/(1-e) (y - m0)] / sum t`` (Hahn 1998; Mercatanti & Li 2014).
     SE: square root of the empirical variance of the estimated influence function over n
     (nuisance estimation ignored: first-order valid when both models are right).
@@ -367,14 +390,30 @@ def aipw(y, t, X, *, estimand, outcome_type, alpha=0.05, measure="difference", s
         y, t, X, estimand, alpha, outcome_type, measure, None, score)
     if score is None:
         score = _score_or_raise(t, X, None)["e"]
+    return _aipw_row(y, t, X, score, estimand, outcome_type, measure, alpha,
+                     _label(estimand, estimand_label))
+
+
+def _aipw_row(y, t, X, score, estimand, outcome_type, measure, alpha, label):
     res = aipw_fit(y, t, X, score, estimand, outcome_type)
     model = "OLS" if outcome_type == "continuous" else "logistic GLM"
     return _row("AIPW (doubly robust)", res, measure=measure, alpha=alpha, estimand=estimand,
-                label=_label(estimand, estimand_label),
-                se_method="empirical variance of the estimated influence function",
+                label=label, se_method="empirical variance of the estimated influence function",
                 notes=[f"outcome models: {model} fitted separately in each group"])
 
 
+def _check_interactions(interactions, p):
+    if isinstance(interactions, str):
+        if interactions not in ("all", "none"):
+            raise InputError(f"`interactions` must be 'all', 'none' or column indexes of X, got {interactions!r}")
+        return interactions
+    idx = list(np.atleast_1d(interactions))
+    if any(isinstance(j, (bool, np.bool_)) or not isinstance(j, (int, np.integer)) or not 0 <= j < p for j in idx):
+        raise InputError(f"`interactions` must be 'all', 'none' or column indexes 0..{p - 1} of X, got {interactions!r}")
+    return tuple(sorted({int(j) for j in idx}))
+
+
+@_one_blas_thread
 def standardize(y, t, X, *, estimand, outcome_type, alpha=0.05, measure="difference",
                 interactions="all", estimand_label=None):
     """Outcome regression with standardization (g-formula) and a stacked sandwich SE.
@@ -392,18 +431,12 @@ def standardize(y, t, X, *, estimand, outcome_type, alpha=0.05, measure="differe
     score equations and the averaging equations, so it also reflects the sampling of X.
     """
     y, t, X, estimand, alpha, _, _ = _check_inputs(y, t, X, estimand, alpha, outcome_type, measure)
-    p = X.shape[1]
-    if not isinstance(interactions, str):
-        idx = list(interactions)
-        if any(not isinstance(j, (int, np.integer)) or not 0 <= j < p for j in idx):
-            raise InputError(f"`interactions` must be 'all', 'none' or column indexes 0..{p - 1} of X, got {interactions!r}")
-    elif interactions not in ("all", "none"):
-        raise InputError(f"`interactions` must be 'all', 'none' or column indexes of X, got {interactions!r}")
+    interactions = _check_interactions(interactions, X.shape[1])
     res = standardize_fit(y, t, X, estimand, outcome_type, interactions)
     model = "OLS" if outcome_type == "continuous" else "logistic GLM"
     which = ("exposure x every covariate (separate models per group)" if interactions == "all"
              else "no exposure interactions" if interactions == "none"
-             else f"exposure x columns {sorted(int(j) for j in interactions)}")
+             else f"exposure x columns {list(interactions)}")
     return _row("Outcome regression, standardized", res, measure=measure, alpha=alpha,
                 estimand=estimand, label=_label(estimand, estimand_label),
                 se_method="stacked estimating equations (model and averaging)",
@@ -411,6 +444,7 @@ def standardize(y, t, X, *, estimand, outcome_type, alpha=0.05, measure="differe
                 details={"n_coefficients": res["n_coef"]})
 
 
+@_one_blas_thread
 def cross_checks(y, t, X, *, estimand, alpha=0.05, outcome_type, measure="difference",
                  truncate=None, score=None, interactions="all", estimand_label=None):
     """Run IPW, AIPW and standardization on the same sample and estimand.
@@ -439,6 +473,7 @@ def cross_checks(y, t, X, *, estimand, alpha=0.05, outcome_type, measure="differ
     """
     y, t, X, estimand, alpha, truncate, score = _check_inputs(
         y, t, X, estimand, alpha, outcome_type, measure, truncate, score)
+    _check_interactions(interactions, X.shape[1])
     label = _label(estimand, estimand_label)
     notes = []
     sfit = _score_or_raise(t, X, score)
@@ -455,11 +490,7 @@ def cross_checks(y, t, X, *, estimand, alpha=0.05, outcome_type, measure="differ
         tfit = ipw_fit(y, t, sfit, estimand, truncate=truncate)
         rows.append(_ipw_row(tfit, measure, alpha, estimand, label, truncate))
         diag_fit = tfit
-    res = aipw_fit(y, t, X, fit["score"], estimand, outcome_type)
-    model = "OLS" if outcome_type == "continuous" else "logistic GLM"
-    rows.append(_row("AIPW (doubly robust)", res, measure=measure, alpha=alpha, estimand=estimand,
-                     label=label, se_method="empirical variance of the estimated influence function",
-                     notes=[f"outcome models: {model} fitted separately in each group"]))
+    rows.append(_aipw_row(y, t, X, fit["score"], estimand, outcome_type, measure, alpha, label))
     rows.append(standardize(y, t, X, estimand=estimand, outcome_type=outcome_type, alpha=alpha,
                             measure=measure, interactions=interactions, estimand_label=label))
     return CrossCheckResult(

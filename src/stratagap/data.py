@@ -26,12 +26,12 @@ from scipy import stats
 
 from ._errors import DataWarning, InputError, MissingDataWarning
 from ._readers import read_table
-from . import _design
+from . import _coding, _design
 
 __all__ = ["read_table", "prepare", "observed_weights", "PreparedData", "BalanceTerm", "Flow"]
 
 BalanceTerm = _design.BalanceTerm
-_GROUPS = ("exposed", "reference", "unknown")
+_GROUPS = {"exposed": 1, "reference": 0, "unknown": -1}
 _FLAGS = {"censored", "censor", "cens", "event", "status", "death", "died", "dead"}
 _DURATIONS = {"time", "days", "months", "years", "followup", "duration", "survival", "surv", "tte"}
 
@@ -192,8 +192,12 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
             raise InputError(f"`--covariates` includes '{col}', which is the {'exposure' if col == exposure else 'outcome'}; remove it")
     if exposure == outcome:
         raise InputError(f"`--exposure` and `--outcome` are the same column '{exposure}'; choose two different columns")
-    if strata_column is not None and strata_column in (exposure, outcome):
-        raise InputError(f"`--strata-column` '{strata_column}' is also the exposure or outcome; choose another column")
+    for arg, col in (("--strata-column", strata_column), ("--negative-control", negative_control)):
+        if col is not None and col in (exposure, outcome, *covariates):
+            raise InputError(f"`{arg}` '{col}' is also the exposure, outcome or a covariate; choose another column")
+    if negative_control is not None and not pd.api.types.is_numeric_dtype(table[negative_control]):
+        raise InputError(f"`--negative-control` column '{negative_control}' is not numeric; "
+                         "a negative-control outcome must be numbers (0/1 for a binary one)")
     for arg, cols in (("--exposure", [exposure]), ("--outcome", [outcome]), ("--covariates", covariates),
                       ("--negative-control", [negative_control] if negative_control else [])):
         for col in cols:
@@ -203,9 +207,9 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     n_read = len(table)
     ex = table[exposure]
     known = ex.notna().to_numpy()
-    exposed, levels = _code_exposure(ex[known], exposure, exposed_value)
-    group = np.full(n_read, "unknown", dtype=object)
-    group[known] = np.where(exposed, "exposed", "reference")
+    exposed, levels = _coding.code_exposure(ex[known], exposure, exposed_value)
+    group = np.full(n_read, -1, dtype=np.int8)  # 1 exposed, 0 reference, -1 exposure missing
+    group[known] = exposed
 
     miss = {c: table[c].isna().to_numpy() for c in dict.fromkeys([exposure, outcome, *covariates])}
     if strata_column is not None:
@@ -221,7 +225,7 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     for c in drop_cols:
         dropped |= miss[c]
     by_column = {c: int(miss[c].sum()) for c in drop_cols}
-    by_group = {g: int(np.sum(dropped & (group == g))) for g in _GROUPS}
+    by_group = {g: int(np.sum(dropped & (group == code))) for g, code in _GROUPS.items()}
     miss_out, p_out = _missing_outcome(group, miss[outcome])
     if dropped.all():
         worst = sorted(by_column, key=lambda c: -by_column[c])[:3]
@@ -230,12 +234,12 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
                          f"{listed}: check these columns or use --missing indicator for covariates")
 
     # Candidate rows: everything known except possibly the outcome (they feed the censoring model).
-    cand_mask = ~(dropped & ~miss[outcome]) & ~np.logical_or.reduce([miss[c] for c in drop_cols if c != outcome])
+    cand_mask = ~np.logical_or.reduce([miss[c] for c in drop_cols if c != outcome])
     cols = list(dict.fromkeys([exposure, outcome, *covariates, *(c for c in (strata_column, negative_control) if c)]))
     cand = table.loc[cand_mask, cols].copy()
     cand["__row__"] = np.flatnonzero(cand_mask)
-    cand["__t__"] = np.where(group[cand_mask] == "exposed", 1, 0).astype(np.int8)
-    order = _canonical_order(cand, ["__t__", *cols])
+    cand["__t__"] = group[cand_mask]
+    order = _coding.canonical_order(cand, ["__t__", *cols])
     cand = cand.iloc[order].reset_index(drop=True)
     filled, formula_used = _design.fill_missing(cand, covariates, formula, missing)
     keep = cand[outcome].notna().to_numpy()
@@ -255,15 +259,16 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
         only = "exposed" if n1 else "reference"
         raise InputError(f"`--exposure` '{exposure}': after dropping rows with missing values only the {only} "
                          f"group ({levels[only]}) remains ({len(t)} rows); check the missing values")
-    y, out_type, out_levels = _code_outcome(work[outcome], outcome, outcome_type, outcome_event)
+    y, out_type, out_levels = _coding.code_outcome(work[outcome], outcome, outcome_type, outcome_event)
     design = _design.build(work, covariates, formula_used, t)
 
     strata = strata_levels = None
     if strata_column is not None:
-        strata, strata_levels = _codes(work[strata_column])
+        strata, strata_levels = _coding.codes(work[strata_column])
+        strata_levels = [_fmt(v) for v in strata_levels]
     nc = None
     if negative_control is not None:
-        nc = pd.to_numeric(work[negative_control].astype(object), errors="coerce").to_numpy(np.float64)
+        nc = work[negative_control].to_numpy(dtype=np.float64, na_value=np.nan)
 
     flow = Flow(rows_read=n_read, dropped_missing_by_column=by_column, dropped_missing_by_group=by_group,
                 missing_outcome_by_group=miss_out, rows_used=len(t),
@@ -372,79 +377,14 @@ def _warn_time_to_event(table, outcome) -> None:
                       "is not handled", DataWarning, stacklevel=3)
 
 
-def _code_exposure(values: pd.Series, col, exposed_value):
-    counts = values.value_counts(sort=False)
-    uniq = list(counts.index)
-    if len(uniq) != 2:
-        how = ("a two-group comparison needs exactly 2: recode the column to two groups or keep only the "
-               "rows of two groups")
-        raise InputError(f"`--exposure` column '{col}' has {len(uniq)} value(s) ({_value_list(counts)}); {how}")
-    if exposed_value is None:
-        if pd.api.types.is_bool_dtype(values) or set(uniq) == {True, False} and all(isinstance(u, (bool, np.bool_)) for u in uniq):
-            exp = True
-        elif pd.api.types.is_numeric_dtype(values) and {float(u) for u in uniq} == {0.0, 1.0}:
-            exp = [u for u in uniq if float(u) == 1.0][0]
-        else:
-            a, b = sorted(_fmt(u) for u in uniq)
-            raise InputError(f"`--exposure` column '{col}' has two values ({a}, {b}) but neither is marked as "
-                             f"exposed; pass --exposed-value {a} or --exposed-value {b}")
-    else:
-        match = [u for u in uniq if _same(u, exposed_value)]
-        if len(match) != 1:
-            raise InputError(f"`--exposed-value` {exposed_value!r} is not one of the two values of '{col}' "
-                             f"({_value_list(counts)}); pass one of them")
-        exp = match[0]
-    ref = [u for u in uniq if u is not exp and not _same(u, exp)][0]
-    mask = (values == exp).to_numpy()
-    return mask, {"exposed": _fmt(exp), "reference": _fmt(ref)}
-
-
-def _code_outcome(s: pd.Series, col, outcome_type, event):
-    counts = s.value_counts(sort=False)
-    uniq = list(counts.index)
-    is_bool = pd.api.types.is_bool_dtype(s) or (len(uniq) > 0 and all(isinstance(u, (bool, np.bool_)) for u in uniq))
-    numeric = pd.api.types.is_numeric_dtype(s) and not is_bool
-    if len(uniq) < 2:
-        raise InputError(f"`--outcome` column '{col}' is constant in the analysed rows ({_value_list(counts)}); "
-                         "an outcome must vary: check the column or the missing values")
-    if event is not None and outcome_type == "continuous":
-        raise InputError("`--outcome-event` applies to binary outcomes only; drop it or use --outcome-type binary")
-    if outcome_type == "continuous" or (outcome_type == "auto" and event is None and len(uniq) > 2):
-        if not (numeric or is_bool):
-            raise InputError(f"`--outcome` column '{col}' is not numeric ({_value_list(counts)}); a continuous "
-                             "outcome must be numbers, and a binary one must have exactly 2 values")
-        return s.to_numpy(dtype=np.float64), "continuous", None
-    if len(uniq) != 2:
-        raise InputError(f"`--outcome` column '{col}' has {len(uniq)} values ({_value_list(counts)}); a binary "
-                         "outcome needs exactly 2: recode it or use --outcome-type continuous")
-    if event is not None:
-        match = [u for u in uniq if _same(u, event)]
-        if len(match) != 1:
-            raise InputError(f"`--outcome-event` {event!r} is not one of the values of '{col}' "
-                             f"({_value_list(counts)}); pass one of them")
-        ev = match[0]
-    elif is_bool:
-        ev = True
-    elif numeric and {float(u) for u in uniq} == {0.0, 1.0}:
-        ev = [u for u in uniq if float(u) == 1.0][0]
-    else:
-        a, b = sorted(_fmt(u) for u in uniq)
-        alt = " or --outcome-type continuous" if numeric else ""
-        raise InputError(f"`--outcome` column '{col}' has two values ({a}, {b}); say which is the event with "
-                         f"--outcome-event {a} or --outcome-event {b}{alt}")
-    other = [u for u in uniq if not _same(u, ev)][0]
-    y = (s == ev).to_numpy(dtype=np.float64)
-    return y, "binary", {"event": _fmt(ev), "non_event": _fmt(other)}
-
-
 def _missing_outcome(group, miss_y):
     """Missing-outcome counts and shares per group; warn when they differ (two-proportion z-test)."""
     out = {}
     for g in ("exposed", "reference"):
-        n_g = int(np.sum(group == g))
-        m = int(np.sum(miss_y & (group == g)))
+        n_g = int(np.sum(group == _GROUPS[g]))
+        m = int(np.sum(miss_y & (group == _GROUPS[g])))
         out[g] = {"n": m, "share": m / n_g if n_g else float("nan")}
-    n1, n0 = int(np.sum(group == "exposed")), int(np.sum(group == "reference"))
+    n1, n0 = int(np.sum(group == 1)), int(np.sum(group == 0))
     m1, m0 = out["exposed"]["n"], out["reference"]["n"]
     pooled = (m1 + m0) / (n1 + n0) if n1 + n0 else 0.0
     if n1 == 0 or n0 == 0 or pooled in (0.0, 1.0):
@@ -457,38 +397,6 @@ def _missing_outcome(group, miss_y):
                       "censoring_weights option (inverse-probability-of-censoring weights)",
                       MissingDataWarning, stacklevel=3)
     return out, p
-
-
-def _canonical_order(frame: pd.DataFrame, cols) -> np.ndarray:
-    """Stable, hash-free row order by the values of ``cols`` (numbers by value, others by text)."""
-    keys = [_codes(frame[c])[0] for c in cols]
-    return np.lexsort(keys[::-1])
-
-
-def _codes(s: pd.Series):
-    """Dense codes of ``s`` in sorted order (numbers by value, others by text; missing last)."""
-    if pd.api.types.is_numeric_dtype(s) and not pd.api.types.is_bool_dtype(s):
-        arr = s.to_numpy(dtype=np.float64, na_value=np.nan)
-        lev, codes = np.unique(arr, return_inverse=True)
-        return codes.astype(np.int64), [_fmt(v) for v in lev]
-    text = np.array(["\uffff" if pd.isna(v) else _fmt(v) for v in s.astype(object)], dtype=object)
-    lev, codes = np.unique(text, return_inverse=True)
-    return codes.astype(np.int64), [str(v) for v in lev]
-
-
-def _value_list(counts: pd.Series, k: int = 10) -> str:
-    items = sorted(((_fmt(v), int(n)) for v, n in counts.items()), key=lambda x: (-x[1], x[0]))
-    text = ", ".join(f"{v}: {n}" for v, n in items[:k])
-    return text + (f", ... and {len(items) - k} more" if len(items) > k else "") if items else "none"
-
-
-def _same(u, v) -> bool:
-    if _fmt(u) == _fmt(v) or str(u) == str(v):
-        return True
-    try:
-        return float(u) == float(v)
-    except (TypeError, ValueError):
-        return False
 
 
 _fmt = _design.fmt

@@ -14,7 +14,10 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-__all__ = ["make_shift_work_data", "true_effects"]
+__all__ = ["make_shift_work_data", "true_effects", "DEMO_COVARIATES"]
+
+#: The measured confounders of the scenario, as the demo analyses them.
+DEMO_COVARIATES = ("age", "bmi", "smoker", "role")
 
 ROLES = ("nurse", "porter", "admin")
 

@@ -99,7 +99,7 @@ def cochran_q(estimates, ses, *, scale="difference") -> HeterogeneityTest:
     pooled = float(np.sum(w * e) / np.sum(w))
     q = float(np.sum(w * (e - pooled) ** 2))  # Cochran 1954
     df = int(ok.sum()) - 1
-    i2 = max(0.0, (q - df) / q) if q > 0 else 0.0  # Higgins & Thompson 2002, eq. 9 form
+    i2 = max(0.0, (q - df) / q) if q > 0 else 0.0  # Higgins & Thompson 2002
     return HeterogeneityTest(q, df, float(stats.chi2.sf(q, df)),
                              "Cochran's Q (inverse-variance weights), chi-square reference",
                              scale, int(ok.sum()), i2, pooled, excluded)

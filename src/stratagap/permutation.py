@@ -35,92 +35,26 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import stats
 
 from . import _engine_exact as _exact
 from . import _engine_mc as _mc
+from . import _engine_normal as _normal
+from ._engine_checks import (MAX_RESAMPLES, _check_batch, _check_choice, _check_resamples,
+                             _clean, _codes, _weights)
 from ._errors import InputError
 from ._rng import check_seed
 
 __all__ = ["PermutationResult", "residualize", "null_exposed_sums", "null_statistics",
-           "normal_moments", "stratified_test", "STATISTICS", "ENGINES", "ALTERNATIVES"]
+           "normal_moments", "stratified_test", "STATISTICS", "ENGINES", "ALTERNATIVES",
+           "MAX_RESAMPLES"]
 
 STATISTICS = ("mean_difference", "studentized", "sum")
 ENGINES = ("auto", "exact", "monte_carlo", "normal")
 ALTERNATIVES = ("two-sided", "greater", "less")
-MAX_RESAMPLES = 10_000_000
 SHARP_NULL = "sharp null: no effect for any unit"
 WEAK_NULL = "weak null: zero average effect (asymptotic)"
 #: Relative tolerance for ties between a resampled and the observed statistic (as scipy does).
 TIE_RTOL = 1e-13
-
-
-def _clean(values, t, labels, *, columns_ok=True):
-    """Check and clean the arrays; returns (V (n,k) for kept rows, t, codes, S, keep)."""
-    t = np.asarray(t)
-    labels = np.asarray(labels)
-    if t.ndim != 1:
-        raise InputError(f"`t` must be a 1-D array of 0/1 exposure labels, got shape {t.shape}")
-    n = t.size
-    if labels.shape != (n,):
-        raise InputError(f"`labels` must have shape ({n},) like `t`, got {labels.shape}")
-    v = np.asarray(values, dtype=float)
-    if v.ndim == 1:
-        v = v[:, None]
-    if v.ndim != 2 or v.shape[0] != n or (not columns_ok and v.shape[1] != 1):
-        raise InputError(f"`values` must have {n} rows like `t` (1-D, or 2-D with one column "
-                         f"per value), got shape {np.shape(values)}")
-    if not np.all((t == 0) | (t == 1)):
-        raise InputError("`t` must hold only 0 (reference) and 1 (exposed); recode the exposure")
-    if not np.issubdtype(labels.dtype, np.integer):
-        raise InputError("`labels` must be integer stratum labels (-1 = set aside)")
-    keep = labels >= 0
-    if not np.all(np.isfinite(v[keep])):
-        raise InputError("`values` must be finite in every analysed row; drop or impute "
-                         "missing values first")
-    uniq, codes = _codes(labels[keep])
-    if uniq.size == 0:
-        raise InputError("`labels`: no stratum left (every row is -1); nothing to test")
-    tk = t[keep].astype(np.int64)
-    n_s = np.bincount(codes, minlength=uniq.size)
-    n1_s = np.bincount(codes, weights=tk, minlength=uniq.size)
-    bad = np.flatnonzero((n1_s == 0) | (n1_s == n_s))
-    if bad.size:
-        raise InputError(f"`labels`: stratum {int(uniq[bad[0]])} has units of only one group; "
-                         "every stratum needs at least 1 exposed and 1 reference unit "
-                         "(merge strata or set it aside with label -1)")
-    return v[keep], tk, codes.astype(np.int64), int(uniq.size), keep
-
-
-def _codes(lab):
-    """Sorted distinct labels and each row's position among them (bincount when compact)."""
-    if lab.size and 0 <= lab.min() and lab.max() < 4 * lab.size + 1024:
-        present = np.bincount(lab) > 0
-        uniq = np.flatnonzero(present)
-        lookup = np.cumsum(present) - 1
-        return uniq, lookup[lab]
-    return np.unique(lab, return_inverse=True)
-
-
-def _weights(n, n1, estimand):
-    if estimand == "ate":
-        return n / n.sum()  # ATE: stratum share of units
-    if estimand == "att":
-        return n1 / n1.sum()  # ATT: stratum share of exposed units
-    raise InputError(f"`estimand` must be 'ate' or 'att', got {estimand!r}")
-
-
-def _check_choice(value, allowed, name):
-    if value not in allowed:
-        raise InputError(f"`{name}` must be one of {', '.join(allowed)}; got {value!r}")
-
-
-def _check_resamples(resamples):
-    if isinstance(resamples, (bool, np.bool_)) or not isinstance(resamples, (int, np.integer)) \
-            or not 1 <= int(resamples) <= MAX_RESAMPLES:
-        raise InputError(f"`--resamples` must be an integer from 1 to {MAX_RESAMPLES:,}, got "
-                         f"{resamples!r}; 10000 is a good default")
-    return int(resamples)
 
 
 def residualize(y, X, labels) -> np.ndarray:
@@ -169,7 +103,7 @@ def residualize(y, X, labels) -> np.ndarray:
 
 
 def null_exposed_sums(values, t, labels, resamples, seed, batch_size=None, progress=None,
-                      workers=1) -> np.ndarray:
+                      workers=None) -> np.ndarray:
     """Per-stratum exposed sums of each value column under within-stratum shuffles.
 
     Returns an array ``(k, S, B)``: ``out[j, s, b]`` is the sum of ``values[:, j]`` over the
@@ -187,48 +121,6 @@ def null_exposed_sums(values, t, labels, resamples, seed, batch_size=None, progr
     return out
 
 
-def _check_batch(batch_size):
-    if batch_size is None:
-        return None
-    if isinstance(batch_size, (bool, np.bool_)) or not isinstance(batch_size, (int, np.integer)) \
-            or batch_size < 1:
-        raise InputError(f"`batch_size` must be a positive integer or None, got {batch_size!r}")
-    return int(batch_size)
-
-
-@dataclass(frozen=True)
-class _Design:
-    """Per-stratum constants of a statistic: sizes, weights and totals."""
-
-    n: np.ndarray
-    n1: np.ndarray
-    w: np.ndarray
-    totals: np.ndarray  # (k, S)
-    statistic: str
-
-    def stat(self, sums: np.ndarray) -> np.ndarray:
-        """Statistic from exposed sums (k, S, B) -> (B,)."""
-        n, n1 = self.n[:, None], self.n1[:, None]
-        n0 = n - n1
-        w = self.w[:, None]
-        S, R = sums[0], self.totals[0][:, None]
-        if self.statistic == "sum":
-            return S.sum(axis=0)  # Mantel & Haenszel 1959: exposed events summed over strata
-        # difference of exposed and reference means, linear in S_s
-        diff = S * (1 / n1 + 1 / n0) - R / n0
-        if self.statistic == "mean_difference":
-            return (w * diff).sum(axis=0)
-        # studentized (values centred within strata; column 1 holds their squares)
-        Q, QR = sums[1], self.totals[1][:, None]
-        s1 = (Q - S**2 / n1) / (n1 - 1)  # exposed sample variance
-        s0 = ((QR - Q) - (R - S) ** 2 / n0) / (n0 - 1)  # reference sample variance
-        num = (w * diff).sum(axis=0)
-        den = (w**2 * (np.maximum(s1, 0) / n1 + np.maximum(s0, 0) / n0)).sum(axis=0)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            z = num / np.sqrt(den)  # Wu & Ding 2021, eq. for the studentized difference
-        return np.where(den > 0, z, np.where(num == 0, 0.0, np.sign(num) * np.inf))
-
-
 def _prepare(values, t, labels, estimand, statistic):
     v, tk, codes, n_strata, _ = _clean(values, t, labels, columns_ok=False)
     n = np.bincount(codes, minlength=n_strata).astype(float)
@@ -244,30 +136,12 @@ def _prepare(values, t, labels, estimand, statistic):
         v = np.column_stack([c, c**2])
     totals = np.stack([np.bincount(codes, weights=v[:, j], minlength=n_strata)
                        for j in range(v.shape[1])])
-    return v, tk, codes, n_strata, _Design(n, n1, w, totals, statistic)
+    return v, tk, codes, n_strata, _normal.Design(n, n1, w, totals, statistic)
 
 
 def _exposed_sums(v, tk, codes, n_strata):
     return np.stack([np.bincount(codes, weights=v[:, j] * tk, minlength=n_strata)
                      for j in range(v.shape[1])])
-
-
-def _moments(v, codes, n_strata, design: _Design):
-    """Exact permutation mean and variance of a linear statistic."""
-    if design.statistic == "studentized":
-        return 0.0, 1.0
-    n, n1, w = design.n, design.n1, design.w
-    n0 = n - n1
-    R = design.totals[0]
-    ss = np.bincount(codes, weights=(v[:, 0] - (R / n)[codes]) ** 2, minlength=n_strata)
-    mean_s = n1 * R / n  # E S_s = n1_s R_s / n_s
-    var_s = n1 * n0 / (n * (n - 1)) * ss  # Var S_s, sampling without replacement
-    var_s = np.where(n > 1, var_s, 0.0)
-    if design.statistic == "sum":
-        a, b = np.ones_like(n), np.zeros_like(n)
-    else:
-        a, b = w * (1 / n1 + 1 / n0), -w * R / n0
-    return float(np.sum(a * mean_s + b)), float(np.sum(a**2 * var_s))
 
 
 def normal_moments(values, t, labels, estimand, statistic="mean_difference"):
@@ -279,14 +153,7 @@ def normal_moments(values, t, labels, estimand, statistic="mean_difference"):
     """
     _check_choice(statistic, STATISTICS, "statistic")
     v, _, codes, n_strata, design = _prepare(values, t, labels, estimand, statistic)
-    return _moments(v, codes, n_strata, design)
-
-
-def _normal_p(observed, mean, var, statistic):
-    if statistic != "studentized" and var <= 0:
-        return 1.0, 1.0
-    z = (observed - mean) / np.sqrt(var)
-    return float(stats.norm.sf(z)), float(stats.norm.cdf(z))
+    return _normal.moments(v, codes, n_strata, design)
 
 
 def _tail_p(null, observed, weights=None):
@@ -390,7 +257,7 @@ def _pick(alternative, pg, pl):
 
 def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
                     alternative="two-sided", engine="auto", resamples=10000, seed=0,
-                    batch_size=None, progress=None, workers=1) -> PermutationResult:
+                    batch_size=None, progress=None, workers=None) -> PermutationResult:
     """Stratified permutation test of the labels' association with ``values``.
 
     Parameters
@@ -408,7 +275,8 @@ def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
     batch_size : resamples per batch (None: a 32 MiB budget for the sums); results do not
         depend on it
     progress : optional callable ``progress(n_done, n_total)`` called after each batch
-    workers : threads drawing blocks of resamples; results do not depend on it
+    workers : threads drawing blocks of resamples (None: 2 for large data, else 1); results
+        do not depend on it
 
     Returns
     -------
@@ -432,8 +300,8 @@ def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
     batch_size = _check_batch(batch_size)
     v, tk, codes, n_strata, design = _prepare(values, t, labels, estimand, statistic)
     observed = float(design.stat(_exposed_sums(v, tk, codes, n_strata)[:, :, None])[0])
-    mean, var = _moments(v, codes, n_strata, design)
-    npg, npl = _normal_p(observed, mean, var, statistic)
+    mean, var = _normal.moments(v, codes, n_strata, design)
+    npg, npl = _normal.normal_p(observed, mean, var, statistic)
     log_a = _exact.log_assignments(design.n, design.n1)
     n_assign = _exact.n_assignments(design.n, design.n1)
     binary_sum = statistic == "sum" and bool(np.all((v == 0) | (v == 1)))
@@ -486,7 +354,7 @@ def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
 
 
 def null_statistics(values, t, labels, *, estimand, resamples, seed, batch_size=None,
-                    progress=None, workers=1):
+                    progress=None, workers=None):
     """Mean-difference statistics of several value columns under the SAME shuffles.
 
     Returns ``(observed (k,), null (k, B))``. Used by the constant-effect inversion: with
@@ -501,7 +369,7 @@ def null_statistics(values, t, labels, *, estimand, resamples, seed, batch_size=
     w = _weights(n, n1, estimand)
     totals = np.stack([np.bincount(codes, weights=v[:, j], minlength=n_strata)
                        for j in range(v.shape[1])])
-    designs = [_Design(n, n1, w, totals[j:j + 1], "mean_difference") for j in range(v.shape[1])]
+    designs = [_normal.Design(n, n1, w, totals[j:j + 1], "mean_difference") for j in range(v.shape[1])]
     obs_sums = _exposed_sums(v, tk, codes, n_strata)
     observed = np.array([d.stat(obs_sums[j:j + 1, :, None])[0] for j, d in enumerate(designs)])
     plan = _mc.make_plan(v, tk, codes, n_strata)

@@ -122,25 +122,28 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
     headline_measure = "difference" if spec.measure == "difference" else spec.measure
     adjusted = _effects.stratified_regression(
         y, t, X, labels, estimand=spec.estimand, measure=headline_measure, alpha=spec.alpha,
-        interaction_min_extra=spec.interaction_min_extra, population=population)
+        interaction_min_extra=spec.interaction_min_extra, population=population,
+        names=prepared.design_names)
     plain = _effects.plain_stratified_difference(y, t, labels, estimand=spec.estimand,
-                                                 alpha=spec.alpha)
+                                                 alpha=spec.alpha, population=population)
     constant = None
     if not binary:
         constant = _effects.constant_effect(y, t, X, labels, estimand=spec.estimand,
                                             alpha=spec.alpha, resamples=spec.resamples,
                                             seed=spec.seed, engine=spec.engine,
-                                            batch_size=spec.batch_size)
+                                            batch_size=spec.batch_size, population=population)
     mh = _effects.mantel_haenszel(y, t, labels, alpha=spec.alpha) if binary else None
     risk_ratio = None
     if binary:
         risk_ratio = adjusted if headline_measure == "rr" else _effects.stratified_regression(
             y, t, X, labels, estimand=spec.estimand, measure="rr", alpha=spec.alpha,
-            interaction_min_extra=spec.interaction_min_extra, population=population)
+            interaction_min_extra=spec.interaction_min_extra, population=population,
+            names=prepared.design_names)
 
     cross = _crosscheck.cross_checks(y, t, X, estimand=spec.estimand, alpha=spec.alpha,
                                      outcome_type=prepared.outcome_type,
-                                     truncate=spec.truncate_weights)
+                                     truncate=spec.truncate_weights,
+                                     score=propensity.score[used], estimand_label=population)
     per = adjusted.per_stratum
     heterogeneity = {"cochran_q": _heterogeneity.cochran_q(
         [s["estimate"] for s in per], [s["se"] for s in per]).to_dict()}

@@ -376,11 +376,15 @@ def _fit_boosting(X, t, folds, seed):
     rng = substream(seed, "crossfit")
     split_seed, model_seed = (int(v) for v in rng.integers(0, 2**31 - 1, size=2))
     splitter = StratifiedKFold(n_splits=folds, shuffle=True, random_state=split_seed)
+    from threadpoolctl import threadpool_limits  # installed with scikit-learn
+
     score = np.empty(t.size)
-    for train, test in splitter.split(X, t):
-        model = HistGradientBoostingClassifier(random_state=model_seed)
-        model.fit(X[train], t[train])
-        score[test] = model.predict_proba(X[test])[:, 1]  # out-of-fold: the model never saw them
+    # One OpenMP thread: the scores then cannot depend on the machine's thread count.
+    with threadpool_limits(limits=1, user_api="openmp"):
+        for train, test in splitter.split(X, t):
+            model = HistGradientBoostingClassifier(random_state=model_seed)
+            model.fit(X[train], t[train])
+            score[test] = model.predict_proba(X[test])[:, 1]  # out-of-fold: never seen
     note = (f"boosting scores cross-fitted over {folds} stratified folds "
             f"(seeded from the 'crossfit' stream of seed {seed})")
     return PropensityFit(score=score, logit=_logit_of(score), auc=_auc(t, score),

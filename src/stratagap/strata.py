@@ -216,8 +216,8 @@ def _quantile(score, t, estimand, n_strata, min_per_group):
         warnings.warn(f"{len(merges)} merge(s) of adjacent score strata (fewer than "
                       f"{min_per_group} units of a group); {int(labels.max()) + 1} strata remain: "
                       + "; ".join(merges), StrataWarning, stacklevel=3)
-    for note in notes:
-        warnings.warn(note, StrataWarning, stacklevel=3)
+    if cuts.size < edges.size:  # the empty-interval note that may follow is not warned about
+        warnings.warn(notes[0], StrataWarning, stacklevel=3)
     S = int(labels.max()) + 1
     kept_cuts = [float(c) for c in cuts
                  if np.any(score <= c) and np.any(score > c) and _separates(score, labels, c)]

@@ -114,7 +114,8 @@ def build_context(view, figures: dict, *, compact: bool) -> dict:
         "warnings": data.get("warnings") or [], "overlap": data.get("overlap") or {},
         "propensity": data.get("propensity") or {}, "balance": data.get("balance") or {},
         "balance_rows": balance_rows, "baseline_header": [c for c in BASELINE_COLUMNS],
-        "baseline_rows": base.to_dict("records"), "baseline_has_raw": raw is not None,
+        "baseline_rows": [{k: (None if isinstance(v, float) and not math.isfinite(v) else v)
+                           for k, v in row.items()} for row in base.to_dict("records")], "baseline_has_raw": raw is not None,
         "strata_rows": _strata_rows(data), "strata_info": data.get("strata_info") or {},
         "test": data.get("test") or {}, "test_rows": _test_rows(data.get("test") or {}),
         "effects": [e for e in effects if e], "heterogeneity": hetero,

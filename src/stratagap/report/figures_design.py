@@ -56,18 +56,17 @@ def plot_overlap(result, *, bins: int = 40) -> Figure:
     lo, hi = float(np.nanmin(score)), float(np.nanmax(score))
     pad = max((hi - lo) * 0.02, 1e-6)
     edges = np.linspace(max(0.0, lo - pad), min(1.0, hi + pad), bins + 1)
-    width = np.diff(edges)
     for group, sign, colour, name in ((1, 1, EXPOSED, exposed_name), (0, -1, REFERENCE, reference_name)):
         members = t == group
         n = max(int(members.sum()), 1)
         kept, _ = np.histogram(score[members & keep], bins=edges)
         aside, _ = np.histogram(score[members & ~keep], bins=edges)
-        ax.bar(edges[:-1], sign * kept / n, width=width, align="edge", color=colour, alpha=0.85,
-               edgecolor="white", linewidth=0.4, label=f"{name}, n = {int(members.sum()):,}")
+        ax.stairs(sign * kept / n, edges, fill=True, color=colour, alpha=0.85,
+                  label=f"{name}, n = {int(members.sum()):,}")
         if aside.any():
-            ax.bar(edges[:-1], sign * aside / n, bottom=sign * kept / n, width=width, align="edge",
-                   facecolor="white", edgecolor=colour, hatch="////", linewidth=0.6,
-                   label=f"{name}: set aside ({int(aside.sum()):,})")
+            ax.stairs(sign * (kept + aside) / n, edges, baseline=sign * kept / n, fill=True,
+                      facecolor="white", edgecolor=colour, hatch="////", linewidth=0.6,
+                      label=f"{name}: set aside ({int(aside.sum()):,})")
     ax.axhline(0, color=INK, linewidth=0.8)
     bounds = ov.get("bounds")
     if bounds:

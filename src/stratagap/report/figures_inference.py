@@ -76,12 +76,10 @@ def plot_null_distribution(result, *, bins: int = 50) -> Figure:
         share = counts / max(counts.sum(), 1e-300)
         mids = 0.5 * (edges[1:] + edges[:-1])
         extreme = _extreme(mids, obs, centre, alt)
-        ax.bar(edges[:-1], np.where(extreme, 0, share), width=np.diff(edges), align="edge",
-               color=REFERENCE, alpha=0.55, edgecolor="white", linewidth=0.3,
-               label="shuffled statistics")
-        ax.bar(edges[:-1], np.where(extreme, share, 0), width=np.diff(edges), align="edge",
-               color=ALERT, alpha=0.9, edgecolor="white", linewidth=0.3,
-               label="at least as extreme as observed")
+        ax.stairs(np.where(extreme, 0, share), edges, fill=True, color=REFERENCE, alpha=0.55,
+                  label="shuffled statistics")
+        ax.stairs(np.where(extreme, share, 0), edges, fill=True, color=ALERT, alpha=0.9,
+                  label="at least as extreme as observed")
         ax.set_ylabel("share of shuffles" if weights is None else "probability")
     elif var is not None and var > 0:
         sd = math.sqrt(var)

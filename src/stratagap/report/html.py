@@ -27,24 +27,24 @@ __all__ = ["render_html", "write_report", "FIGURES", "CSP"]
 
 CSP = "default-src 'none'; img-src data:; style-src 'unsafe-inline'"
 
-#: (file name, function, caption) in the order the report shows them.
+#: (file name, function, caption) in the order the report shows them (figure numbers follow it).
 FIGURES = (
-    ("overlap", plot_overlap, "Figure 1. Propensity-score distributions of the two groups, "
-     "mirrored, with the overlap rule's bounds; hatched bars are units set aside."),
-    ("balance", plot_balance, "Figure 2. Absolute standardized mean difference of each covariate "
-     "(and dummy level) before and after adjustment; dashed line: 0.1 (common practice)."),
-    ("null_distribution", plot_null_distribution, "Figure 3. Distribution of the test statistic "
-     "under within-strata shuffles of the exposure labels, with the observed value and p-value."),
-    ("stratum_effects", plot_stratum_effects, "Figure 4. Effect within each stratum with its CI, "
-     "and the pooled headline estimate (diamond)."),
-    ("gamma_curve", plot_gamma_curve, "Figure 5. Upper bound on the one-sided p-value against "
-     "the sensitivity parameter Γ, with the level and the sensitivity value."),
-    ("tipping", plot_tipping, "Figure 6. Bias-corrected estimate over the prevalence gap and "
-     "outcome effect of a binary unmeasured confounder, with measured covariates for scale."),
-    ("cross_checks", plot_cross_checks, "Figure 7. The headline estimate beside the cross-check "
+    ("overlap", plot_overlap, "Propensity-score distributions of the two groups, mirrored, "
+     "with the overlap rule's bounds; hatched bars are units set aside."),
+    ("balance", plot_balance, "Absolute standardized mean difference of each covariate (and "
+     "dummy level) before and after adjustment; dashed line: 0.1 (common practice)."),
+    ("null_distribution", plot_null_distribution, "Distribution of the test statistic under "
+     "within-strata shuffles of the exposure labels, with the observed value and p-value."),
+    ("stratum_effects", plot_stratum_effects, "Effect within each stratum with its CI, and the "
+     "pooled headline estimate (diamond)."),
+    ("p_value_function", plot_p_value_function, "The p-value function: p-value against the "
+     "hypothesized effect; the CI is where it lies above α."),
+    ("cross_checks", plot_cross_checks, "The headline estimate beside the cross-check "
      "estimators and the crude comparison."),
-    ("p_value_function", plot_p_value_function, "Figure 8. The p-value function: p-value against "
-     "the hypothesized effect; the CI is where it lies above α."),
+    ("gamma_curve", plot_gamma_curve, "Upper bound on the one-sided p-value against the "
+     "sensitivity parameter Γ, with the level and the sensitivity value."),
+    ("tipping", plot_tipping, "Bias-corrected estimate over the prevalence gap and outcome "
+     "effect of a binary unmeasured confounder, with measured covariates for scale."),
 )
 
 
@@ -61,9 +61,11 @@ def _environment() -> jinja2.Environment:
 def _figures(view, formats=("svg",), dpi=150) -> dict:
     """Render every figure once; returns name -> {"caption", formats...: bytes}."""
     out = {}
-    for name, function, caption in FIGURES:
+    for number, (name, function, caption) in enumerate(FIGURES, start=1):
         fig = function(view)
-        entry = {"caption": caption}
+        fig.draw_without_rendering()  # lay out once, then freeze it: each save would redo it
+        fig.set_layout_engine("none")
+        entry = {"caption": f"Figure {number}. {caption}"}
         for fmt in formats:
             entry[fmt] = figure_bytes(fig, fmt, dpi=dpi)
         entry["uri"] = "data:image/svg+xml;base64," + base64.b64encode(entry["svg"]).decode("ascii")
