@@ -120,3 +120,18 @@ def test_to_dict_is_json_ready():
         d = apply_overlap(score, t, estimand="att").to_dict()
     assert json.loads(json.dumps(d)) == d
     assert d["n_kept"] == 13
+
+
+def test_complete_separation_ends_in_no_overlap_error():
+    # Separation is handled by a penalized fit; a covariate that determines exposure still
+    # leaves disjoint score ranges, which is the user error (exit 2 on the CLI).
+    from stratagap._errors import SeparationWarning
+    from stratagap.scores import fit_propensity
+
+    rng = np.random.default_rng(0)
+    x = rng.normal(size=200)
+    t = (x > 0).astype(np.int8)
+    with pytest.warns(SeparationWarning, match="x"):
+        fit = fit_propensity(x[:, None], t, ["x"])
+    with pytest.raises(InputError, match="no overlap"):
+        apply_overlap(fit.score, t, estimand="ate")

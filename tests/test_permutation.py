@@ -16,6 +16,7 @@ import pytest
 from hypothesis import given, settings, strategies as st
 from scipy import stats
 
+from stratagap import _engine_mc as _mc
 from stratagap import permutation as P
 from stratagap._errors import InputError
 
@@ -134,7 +135,10 @@ def _mixed_design(seed=0):
     return y[order], t[order], labels[order]
 
 
-def test_null_sums_identical_for_any_batch_size_and_threads():
+@pytest.mark.parametrize("rows_max_n", [None, 0])
+def test_null_sums_identical_for_any_batch_size_and_threads(rows_max_n, monkeypatch):
+    if rows_max_n is not None:  # also the one-row-at-a-time path of very large strata
+        monkeypatch.setattr(_mc, "ROWS_MAX_N", rows_max_n)
     y, t, labels = _mixed_design()
     values = np.column_stack([y, y**2])
     ref = P.null_exposed_sums(values, t, labels, 1003, seed=9, workers=1)
@@ -181,11 +185,16 @@ def _rank_sum_pmf(n, m):
     return c[m] / c[m].sum()
 
 
-@pytest.mark.parametrize("n,m", [(200, 60), (200, 10), (40, 13), (150, 110)])
-def test_draws_follow_the_exact_subset_distribution(n, m):
-    # (200, 60): byte draw + fix-up; (200, 10): Generator.choice; (40, 13): sorted keys;
-    # (150, 110): reference group drawn. The sum of the ranks of the exposed units has the
-    # exact pmf of _rank_sum_pmf; chi-square goodness of fit on ~equiprobable bins.
+@pytest.mark.parametrize("n,m,rows_max_n", [(200, 60, None), (200, 60, 0), (200, 10, 0),
+                                             (40, 13, None), (150, 110, None), (150, 110, 0)])
+def test_draws_follow_the_exact_subset_distribution(n, m, rows_max_n, monkeypatch):
+    # (200, 60): random-byte threshold, chunked rows (rows_max_n None) or one row at a time
+    # (rows_max_n 0, the path of strata above 32768 units); (200, 10, 0): Generator.choice;
+    # (40, 13): sorted keys; (150, 110): reference group drawn. The sum of the ranks of the
+    # exposed units has the exact pmf of _rank_sum_pmf; chi-square goodness of fit on
+    # ~equiprobable bins.
+    if rows_max_n is not None:
+        monkeypatch.setattr(_mc, "ROWS_MAX_N", rows_max_n)
     ranks = np.arange(n, dtype=float)
     t = np.zeros(n, dtype=np.int8)
     t[:m] = 1

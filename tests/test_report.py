@@ -218,7 +218,7 @@ def test_every_figure_draws_and_serializes(name, function):
     assert len(list(root.iter())) > 50  # something was drawn, not an empty canvas
 
 
-def test_figures_need_no_per_unit_arrays_except_overlap():
+def test_figures_draw_without_per_unit_arrays():
     view = handmade(arrays={}, null_distribution=None)
     for _name, function, _c in FIGURES:
         assert isinstance(function(view), Figure)
@@ -555,3 +555,28 @@ def test_escaping_with_real_column_names_and_levels(tmp_path):
     assert not tree.find("script") and not tree.find("b") and not tree.find("i")
     text = "".join(tree.text)
     assert evil_col in text and "<script>alert(1)</script>" in text and "<i>porter</i>" in text
+
+
+def _ratio_headline(view):
+    view.data["adjusted"].update(estimate=1.3, se=0.1, ci_low=1.07, ci_high=1.58, scale="log",
+                                 measure="risk ratio", constant_effect=None)
+    return view
+
+
+def test_ratio_headline_never_mixes_scales():
+    view = _ratio_headline(handmade())
+    fig = plot_cross_checks(view)
+    left, right = fig.axes[:2]
+    assert right.get_xscale() == "log" and left.get_xscale() == "linear"
+    assert any(tuple(ln.get_xdata()) == (1.0, 1.0) for ln in right.get_lines())  # ratio null
+    assert any(tuple(ln.get_xdata()) == (0.0, 0.0) for ln in left.get_lines())   # difference null
+    fig = plot_stratum_effects(view)
+    labels = [t.get_text() for t in fig.axes[0].get_yticklabels()]
+    assert "pooled (headline)" not in labels and not fig.axes[0].patches
+    fig = plot_p_value_function(view)
+    line = fig.axes[0].get_lines()[0]
+    x, p = np.asarray(line.get_xdata()), np.asarray(line.get_ydata())
+    assert fig.axes[0].get_xscale() == "log"
+    # Wald curve on the log scale: p = 2 Phi(-|log x - log 1.3| / 0.1)
+    np.testing.assert_allclose(p, 2 * stats.norm.sf(np.abs(np.log(x) - np.log(1.3)) / 0.1),
+                               rtol=1e-9)

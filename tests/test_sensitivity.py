@@ -263,6 +263,18 @@ def test_bracket_contains_vertex_worst_case(seed, gamma, shift):
     assert b.p_separable[0] <= _worst_normal_p(v, t, lab, gamma, cuts_only=True) * (1 + 1e-10)
 
 
+@pytest.mark.parametrize("seed,gamma", [(8, 2.0), (14, 5.0), (33, 5.0), (57, 2.0)])
+def test_bracket_upper_end_needed_for_skewed_values(seed, gamma):
+    # skewed values (cubes): here the worst vertex is NOT the separable one, so the conservative
+    # end is what keeps the bracket valid
+    rng = np.random.default_rng(seed)
+    v, t, lab = _tiny_strata(rng, [(4, 2), (5, 2)], binary=False)
+    v = v**3
+    b = gamma_bounds(v, t, lab, gammas=[gamma])
+    worst = _worst_normal_p(v, t, lab, gamma)
+    assert b.p_separable[0] < worst <= b.p_upper[0] * (1 + 1e-10)
+
+
 def test_cut_moments_match_enumeration():
     rng = np.random.default_rng(4)
     v = np.sort(rng.normal(size=7))

@@ -7,18 +7,21 @@ so only that subset has to be drawn. This module draws it as cheaply as an exact
 
 * only the *smaller* group of each stratum is drawn (``m_s = min(n1_s, n0_s)`` units); the sum
   over the exposed units is then either the sum over the draw or the stratum total minus it;
-* large strata with ``m_s`` much smaller than ``n_s`` use numpy's ``Generator.choice(...,
-  replace=False, shuffle=False)`` (Floyd's algorithm or a partial Fisher--Yates, in C, O(m_s));
-* other large strata use a *random-byte threshold*: every unit gets one random byte per
-  resample; the units below the byte value ``c`` at which the count first reaches ``m_s`` are
-  drawn, and the remaining few are picked among the units at ``c`` by 64-bit random keys (the
-  ``m_s`` smallest of i.i.d. keys, the byte being the leading digit: exactly uniform, up to
-  ties of 64-bit keys). No sort of the stratum; the random bytes of a block are drawn in
-  chunks of rows, the sums row by row (a row-sized temporary stays in cache). Measured (n_s = 2e5, m_s/n_s = 0.3-0.5,
-  one resample at a time) an earlier per-resample variant of this byte draw was 5-13x faster
-  than ``argpartition`` of random keys or ``Generator.permutation`` and 5-7x faster than
-  ``Generator.choice``; at ``m_s/n_s`` = 1/16, where the two paths switch, it was as fast as
-  ``Generator.choice``;
+* strata of more than ``ROWS_MAX_N`` units with ``m_s < n_s / 6`` use numpy's
+  ``Generator.choice(..., replace=False, shuffle=False)`` (Floyd's algorithm or a partial
+  Fisher--Yates, in C, O(m_s));
+* other strata above ``SMALL`` units use a *random-byte threshold*: every unit gets one
+  random byte per resample; the units below the byte value ``c`` at which the count first
+  reaches ``m_s`` are drawn, and the remaining few are picked among the units at ``c`` by
+  64-bit random keys (the ``m_s`` smallest of i.i.d. keys, the byte being the leading digit:
+  exactly uniform, up to ties of 64-bit keys, probability below 1e-12). No sort of the
+  stratum; strata up to ``ROWS_MAX_N`` units handle a chunk of resamples with 2-D operations,
+  larger ones row by row (a row-sized temporary stays in cache). Measured for one stratum of
+  2e5 units (2-core machine under load, best of 3): 2.5 ms per resample at m_s/n_s = 0.3
+  against 4.6-12.8 ms for ``argpartition`` of random keys, 15-21 ms for
+  ``Generator.permutation`` and 4.6 ms for ``Generator.choice``; at 0.5: 3.1 against 4.7, 15.8
+  and 8.0 ms; at 1/16 ``Generator.choice`` wins (1.5 against 3.3 ms), hence the switch. The
+  cost left is the masked sum itself (about 2 ns per unit, numpy's floor);
 * small strata (at most ``SMALL`` units, e.g. matched sets) are shuffled together, vectorized,
   by sorting random keys within each stratum;
 * a single binary value column needs no shuffle at all: the exposed sum of stratum ``s`` is
@@ -26,16 +29,18 @@ so only that subset has to be drawn. This module draws it as cheaply as an exact
   ``Generator.hypergeometric`` draw per stratum and resample.
 
 Streams: resample ``b`` is drawn from block ``b // stratagap._rng.BLOCK`` of
-:func:`stratagap._rng.block_generators`; within a block the draws are made resample by resample
-(two child streams: small strata and large strata), so the output is identical for every
-``batch_size`` and every number of worker threads.
+:func:`stratagap._rng.block_generators`; each block is always drawn whole (small strata from one
+child stream, the others stratum by stratum from a second), whatever the batch size, so the
+output is identical for every ``batch_size`` and every number of worker threads (threads draw
+whole blocks). The sums are numpy reductions, not BLAS, so BLAS threads do not matter either.
 
 Memory: :func:`stratagap.permutation.null_exposed_sums` returns ``8 k S B`` bytes. While
 drawing, a batch of ``b`` resamples holds ``8 k S b`` bytes of sums (default ``b``: about
-B/20, whole blocks, within 32 MiB), at least one block of ``BLOCK`` resamples is drawn at a time
-(``2 workers + 1`` blocks in flight with threads), and each worker needs about ``10 n_max``
-bytes for the largest stratum's draw, ``8 k n`` bytes for the sorted copy of the values, and
-``16 n_small`` bytes per row of small-strata keys (rows in chunks of at most 2**21 keys).
+B/20, whole blocks, within 32 MiB); ``2 workers + 1`` blocks of ``8 k S BLOCK`` bytes are in
+flight with threads; ``8 k n`` bytes hold the sorted copy of the values; and each worker needs
+about ``11 ROWS_CHUNK`` (3 MiB) for moderate strata, ``THRESHOLD_CHUNK + 9 n_max`` bytes
+(2 MiB + ...) for the largest stratum, and ``16 n_small`` bytes per row of small-strata keys
+(rows in chunks of at most 2**21 keys).
 
 The rows of every stratum are sorted by their values before drawing, so the draws do not depend
 on the order of the input rows either.
@@ -54,8 +59,8 @@ from ._rng import BLOCK, block_generators
 
 #: Strata with at most this many units are shuffled together by sorting random keys.
 SMALL = 64
-#: Draws with m_s * CHOICE_RATIO < n_s use Generator.choice (Floyd / partial Fisher-Yates).
-CHOICE_RATIO = 16
+#: Strata above ROWS_MAX_N units with m_s * CHOICE_RATIO < n_s use Generator.choice.
+CHOICE_RATIO = 6
 #: Random bytes per chunk of rows for the threshold draw (memory ~ 11 bytes each).
 THRESHOLD_CHUNK = 2**21
 #: Strata up to this size draw a chunk of rows with 2-D operations of ROWS_CHUNK bytes.
@@ -109,7 +114,8 @@ def make_plan(values: np.ndarray, t: np.ndarray, codes: np.ndarray, n_strata: in
         if n[s] <= SMALL:
             small.append(s)
             continue
-        method = "choice" if m[s] * CHOICE_RATIO < n[s] else "bits"
+        choice = n[s] > ROWS_MAX_N and m[s] * CHOICE_RATIO < n[s]
+        method = "choice" if choice else "threshold"
         large.append((s, np.ascontiguousarray(sv[:, starts[s]:starts[s + 1]]), method))
     small_idx = np.asarray(small, dtype=np.int64)
     if small:

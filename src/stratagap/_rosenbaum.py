@@ -245,8 +245,8 @@ def _nch_moments(M, K, N, gamma, cache=None):
 
     Exact by summation over the support when the table is small enough; otherwise the
     large-stratum approximation: the mean solves mu (M - K - N + mu) = Gamma (K - mu)(N - mu)
-    and the variance is M/(M-1) / (1/mu + 1/(K-mu) + 1/(N-mu) + 1/(M-K-N+mu)) (Breslow 1981;
-    both exact at Gamma = 1). Returns (mean, var, exact_flag).
+    and the variance is M/(M-1) / (1/mu + 1/(K-mu) + 1/(N-mu) + 1/(M-K-N+mu)) (Breslow & Day
+    1980, sec. 4.4, from memory; both exact at Gamma = 1). Returns (mean, var, exact_flag).
     """
     K = np.asarray(K, dtype=float)
     # work with the smaller of the drawn and undrawn sets: X = K - (undrawn among K), odds 1/Gamma
@@ -275,7 +275,7 @@ def _nch_moments_large(M, K, N, gamma):
     if gamma == 1.0:
         mean = K * N / M
     else:
-        # root of (1 - G) mu^2 + (M - K - N + G (K + N)) mu - G K N = 0 inside [lo, hi] (Breslow 1981)
+        # root of (1 - G) mu^2 + (M - K - N + G (K + N)) mu - G K N = 0 inside [lo, hi] (Breslow & Day 1980)
         a = 1.0 - gamma
         b = M - K - N + gamma * (K + N)
         c = -gamma * K * N
@@ -535,7 +535,8 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
     Rosenbaum PR (2002). Observational Studies, 2nd ed., ch. 4. Springer.
     Gastwirth JL, Krieger AM, Rosenbaum PR (2000). Asymptotic separability in sensitivity
     analysis. JRSS B 62:545-555.
-    Breslow N (1981). Odds ratio estimators when the data are sparse. Biometrika 68:73-84.
+    Breslow NE, Day NE (1980). Statistical Methods in Cancer Research I, sec. 4.4 (large-stratum
+    moments of the noncentral hypergeometric; from memory). IARC, Lyon.
     """
     gammas = _check_gammas(gammas)
     b = _Bounder(values, t, labels, estimand, statistic, direction)

@@ -105,7 +105,9 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
     strata = _strata.make_strata(propensity.score[keep], prepared.t[keep], estimand=spec.estimand,
                                  n_strata=spec.n_strata, method=spec.strata_method,
                                  min_per_group=spec.min_per_group, user_labels=user,
-                                 logit=propensity.logit[keep])
+                                 logit=propensity.logit[keep],
+                                 # Imbens & Rubin 2015, ch. 13: a new block needs >= K + 2 units
+                                 min_block=len(prepared.design_names) + 2)
     # Rows analysed: kept by the overlap rule and in a stratum holding both groups.
     used = np.flatnonzero(keep)[np.asarray(strata.labels) >= 0]
     labels = np.asarray(strata.labels)[np.asarray(strata.labels) >= 0]
@@ -202,7 +204,8 @@ def _sensitivity_block(spec, prepared, tests, adjusted, risk_ratio, y, t, X, lab
                                        gammas=spec.gamma_grid)
     threshold = _sensitivity.sensitivity_value(tests["values"], t, labels, estimand=spec.estimand,
                                                statistic=statistic, direction=direction,
-                                               alpha=level)
+                                               alpha=spec.alpha,
+                                               two_sided=spec.alternative == "two-sided")
     if binary:
         rr = risk_ratio
         e_value = _sensitivity.e_value(rr.estimate, rr.ci_low, rr.ci_high, measure="rr",

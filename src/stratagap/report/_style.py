@@ -15,6 +15,7 @@ Tol, P. (2021). Colour schemes. SRON technical note SRON/EPS/TN/09-002, issue 3.
 from __future__ import annotations
 
 import io
+import textwrap
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 
@@ -88,8 +89,9 @@ def new_figure(title: str, subtitle: str = "", *, size=(7.2, 4.2), nrows=1, ncol
         FigureCanvasAgg(fig)
         axes = fig.subplots(nrows, ncols, squeeze=False, **kw)
         fig.suptitle(title, x=0.01, ha="left", fontsize=11.5, fontweight="bold", color=INK)
-        if subtitle:
-            axes[0, 0].set_title(subtitle, loc="left")
+        if subtitle:  # wrapped to the axes width (tick labels can take a third of 7.2 in)
+            width = int(78 * size[0] / 7.2)
+            axes[0, 0].set_title(textwrap.fill(subtitle, width), loc="left")
     return fig, (axes[0, 0] if nrows * ncols == 1 else axes)
 
 

@@ -131,9 +131,16 @@ def plot_stratum_effects(result) -> Figure:
     per = list(adj.get("per_stratum") or [])
     level = int(round(100 * (1 - float(adj.get("alpha") or 0.05))))
     measure = adj.get("measure", "")
+    ratio = "ratio" in str(measure)
+    per_measure = next((s["measure"] for s in per if s.get("measure")), None)
+    # A ratio headline is pooled from standardized risks; its strata hold risk differences.
+    per_measure = per_measure or ("risk difference" if ratio else measure)
+    same = ("ratio" in str(per_measure)) == ratio
+    note = "" if same else f"; the {measure} headline is not on this scale"
     fig, ax = new_figure("Effect within each propensity-score stratum",
-                         f"{measure} per stratum, {level}% CI; marker area = stratum weight "
-                         f"({adj.get('estimand', '')})", size=(7.2, 1.9 + 0.36 * (len(per) + 2)))
+                         f"{per_measure} per stratum, {level}% CI; marker area = stratum weight "
+                         f"({adj.get('estimand', '')}){note}",
+                         size=(7.2, 1.9 + 0.36 * (len(per) + 2)))
     if not per:
         _empty(ax, "no per-stratum estimates on this result")
         return fig
@@ -150,21 +157,20 @@ def plot_stratum_effects(result) -> Figure:
             ax.scatter([est], [y], s=area, marker="s", color=REFERENCE, zorder=3,
                        edgecolor="white", linewidth=0.6)
     est, lo, hi = adj.get("estimate"), adj.get("ci_low"), adj.get("ci_high")
-    ratio = "ratio" in str(measure)
-    per_ratio = any("ratio" in str(s.get("measure", "")) for s in per)
-    if est is not None and lo is not None and hi is not None and ratio == per_ratio:
+    pooled = est is not None and lo is not None and hi is not None and same
+    if pooled:
         ax.add_patch(Polygon([[lo, 0.6], [est, 0.85], [hi, 0.6], [est, 0.35]], closed=True,
                              facecolor=ACCENT, edgecolor=INK, linewidth=0.8, zorder=3))
         ax.axvline(est, color=ACCENT, linestyle=(0, (2, 2)), linewidth=1.0)
-    ax.axvline(null_value(measure if ratio == per_ratio else ""), color=INK, linewidth=0.9)
+    ax.axvline(null_value(per_measure), color=INK, linewidth=0.9)
     labels = [f"stratum {int(s.get('stratum', i)) + 1}  ({s.get('n_exposed', '?')} / "
               f"{s.get('n_reference', '?')}; w = {float(s.get('weight') or 0):.2f})"
               for i, s in enumerate(per)]
-    ax.set_yticks(list(ys) + [0.6])
-    ax.set_yticklabels(labels + ["pooled (headline)"], fontsize=8)
-    ax.set_ylim(0.1, n + 1.7)
+    ax.set_yticks(list(ys) + ([0.6] if pooled else []))
+    ax.set_yticklabels(labels + (["pooled (headline)"] if pooled else []), fontsize=8)
+    ax.set_ylim(0.1 if pooled else 1.4, n + 1.7)
     ax.grid(axis="y", visible=False)
-    ax.set_xlabel(f"{measure}   (counts: exposed / reference)")
+    ax.set_xlabel(f"{per_measure}   (counts: exposed / reference)")
     return fig
 
 
@@ -190,6 +196,9 @@ def _rows_for_cross_checks(data: dict) -> list[tuple[str, dict, str]]:
 def plot_cross_checks(result) -> Figure:
     """Figure 7: the cross-check estimators beside the headline, crude on top for contrast.
 
+    Rows on a ratio scale (a ratio headline) and on a difference scale are drawn in two panels
+    sharing the row labels, each with its own no-effect line, so no scales are mixed.
+
     Returns
     -------
     matplotlib.figure.Figure
@@ -199,29 +208,49 @@ def plot_cross_checks(result) -> Figure:
     measure = adj.get("measure", "")
     rows = _rows_for_cross_checks(v.data)
     level = int(round(100 * (1 - float(adj.get("alpha") or 0.05))))
-    fig, ax = new_figure("Does the gap survive across adjustment methods?",
-                         f"{measure} and {level}% CI; same analysed sample and estimand "
-                         f"({v.data.get('question', {}).get('population', '')}), crude for contrast",
-                         size=(7.2, 1.8 + 0.38 * max(len(rows), 2)))
+    ratio_rows = ["ratio" in str(r.get("measure", "")) for _n, r, _c in rows]
+    panels = [k for k in (False, True) if k in ratio_rows]
+    fig, axes = new_figure("Does the gap survive across adjustment methods?",
+                           f"estimates and {level}% CIs on the same analysed sample and estimand, "
+                           "crude for contrast", size=(7.2, 1.8 + 0.38 * max(len(rows), 2)),
+                           ncols=max(len(panels), 1), sharey=True,
+                           gridspec_kw={"width_ratios": [3, 2][:len(panels)] or [1]})
+    axes = list(np.ravel(axes))
     if not rows:
-        _empty(ax, "no estimates on this result")
+        _empty(axes[0], "no estimates on this result")
         return fig
     ys = np.arange(len(rows), 0, -1)
-    for y, (_name, row, colour) in zip(ys, rows):
-        est, lo, hi = row.get("estimate"), row.get("ci_low"), row.get("ci_high")
-        if lo is not None and hi is not None:
-            ax.hlines(y, lo, hi, color=colour, linewidth=2.4, alpha=0.9)
-        if est is not None:
-            ax.plot([est], [y], marker="|", markersize=14, markeredgewidth=2.6, color=INK)
-    if adj.get("ci_low") is not None and adj.get("ci_high") is not None:
-        ax.axvspan(adj["ci_low"], adj["ci_high"], color=ACCENT, alpha=0.08, zorder=0)
-    ax.axvline(null_value(measure), color=INK, linewidth=0.9, linestyle=(0, (4, 2)))
-    ax.set_yticks(ys)
-    ax.set_yticklabels([name for name, _r, _c in rows], fontsize=8)
-    ax.set_ylim(0.4, len(rows) + 0.6)
-    ax.grid(axis="y", visible=False)
-    ax.set_xlabel(f"{measure}   (dashed: no effect; band: headline CI)")
+    for ax, kind in zip(axes, panels):
+        scale = next(r.get("measure", "") for (_n, r, _c), k in zip(rows, ratio_rows) if k == kind)
+        for y, (_name, row, colour), k in zip(ys, rows, ratio_rows):
+            if k != kind:
+                continue
+            est, lo, hi = row.get("estimate"), row.get("ci_low"), row.get("ci_high")
+            if lo is not None and hi is not None:
+                ax.hlines(y, lo, hi, color=colour, linewidth=2.4, alpha=0.9)
+            if est is not None:
+                ax.plot([est], [y], marker="|", markersize=14, markeredgewidth=2.6, color=INK)
+        headline_here = ("ratio" in str(measure)) == kind
+        if headline_here and adj.get("ci_low") is not None and adj.get("ci_high") is not None:
+            ax.axvspan(adj["ci_low"], adj["ci_high"], color=ACCENT, alpha=0.08, zorder=0)
+        ax.axvline(null_value(scale if not kind else "ratio"), color=INK, linewidth=0.9,
+                   linestyle=(0, (4, 2)))
+        if kind:
+            ax.set_xscale("log")
+            _plain_log_ticks(ax)
+        ax.grid(axis="y", visible=False)
+        ax.set_xlabel(f"{scale}" + ("\n(band: headline CI)" if headline_here else ""))
+    axes[0].set_yticks(ys)
+    axes[0].set_yticklabels([name for name, _r, _c in rows], fontsize=8)
+    axes[0].set_ylim(0.4, len(rows) + 0.6)
     return fig
+
+
+def _plain_log_ticks(ax):
+    from matplotlib.ticker import FuncFormatter, LogLocator
+    ax.xaxis.set_major_locator(LogLocator(base=10, subs=(1.0, 1.5, 2.0, 3.0, 5.0, 7.0)))
+    ax.xaxis.set_major_formatter(FuncFormatter(lambda x, _p: f"{x:g}"))
+    ax.xaxis.set_minor_formatter(FuncFormatter(lambda _x, _p: ""))
 
 
 def plot_p_value_function(result) -> Figure:
@@ -271,6 +300,7 @@ def plot_p_value_function(result) -> Figure:
         ax.plot(tau, p, color=REFERENCE, linewidth=1.8, label="Wald p(τ0)")
         if log:
             ax.set_xscale("log")
+            _plain_log_ticks(ax)
         xlabel = f"hypothesized effect τ0 ({measure})"
     ax.axhline(alpha, color=ALERT, linestyle=(0, (4, 2)), linewidth=1.1, label=f"α = {alpha:g}")
     if lo is not None and hi is not None:

@@ -37,8 +37,8 @@ def plot_gamma_curve(result) -> Figure:
     bounds = sens.get("gamma_bounds") or {}
     direction = sens.get("gamma_direction") or detail.get("direction", "")
     fig, ax = new_figure("How much hidden bias would erase significance?",
-                         f"upper bound on the one-sided p-value ({direction}) when an unmeasured "
-                         "covariate multiplies the odds of exposure by up to Γ")
+                         f"bound on the one-sided p-value ({direction}) if an unmeasured covariate "
+                         "changes the odds of exposure by up to Γ")
     if not curve:
         ax.text(0.5, 0.5, "no sensitivity curve on this result", ha="center",
                 transform=ax.transAxes, color=MUTED)
