@@ -362,6 +362,13 @@ def test_strata_zero(frame):
     input_error(frame, r"--strata", n_strata=0)
 
 
+def test_one_stratum_is_allowed(frame):
+    # `--strata 1` is a legal request (an unstratified, covariance-adjusted comparison);
+    # secondary diagnostics that need two strata must step aside, not fail the analysis.
+    d = run(frame, n_strata=1).to_dict()
+    assert len(d["strata"]) == 1 and 0 < d["test"]["p_value"] <= 1
+
+
 def test_tiny_sample_gets_a_result_or_a_clean_error(frame):
     tiny = frame.groupby("grp").head(4).reset_index(drop=True)  # 4 + 4 units
     try:

@@ -207,6 +207,9 @@ def test_exposure_one_or_many_values():
         prepare(df, exposure="one", outcome="sbp", covariates=["age"])
     with pytest.raises(InputError, match=r"'site' has 3 value\(s\) \((\w+: \d+, ){2}\w+: \d+\).*recode"):
         prepare(df, exposure="site", outcome="sbp", covariates=["age"])
+    df["none"] = np.nan
+    with pytest.raises(InputError, match="'none' is missing in every row"):
+        prepare(df, exposure="none", outcome="sbp", covariates=["age"])
     df["many"] = np.arange(200) % 12
     with pytest.raises(InputError, match=r"has 12 value\(s\).*\.\.\. and 2 more"):
         prepare(df, exposure="many", outcome="sbp", covariates=["age"])

@@ -7,7 +7,6 @@ structural tests parse a real report (a small demo run, 500 resamples) with ``ht
 from __future__ import annotations
 
 import base64
-import copy
 import math
 import re
 import sys
@@ -580,3 +579,10 @@ def test_ratio_headline_never_mixes_scales():
     # Wald curve on the log scale: p = 2 Phi(-|log x - log 1.3| / 0.1)
     np.testing.assert_allclose(p, 2 * stats.norm.sf(np.abs(np.log(x) - np.log(1.3)) / 0.1),
                                rtol=1e-9)
+
+
+def test_same_result_same_bytes(handmade_html):
+    """Same inputs give the same page and figures (fixed SVG ids and metadata)."""
+    view = handmade()
+    assert render_html(view) == handmade_html[0]
+    assert figure_bytes(plot_tipping(view), "svg") == figure_bytes(plot_tipping(handmade()), "svg")

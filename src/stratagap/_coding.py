@@ -16,6 +16,8 @@ def code_exposure(values: pd.Series, col, exposed_value):
     counts = values.value_counts(sort=False)
     counts = counts[counts > 0]  # a categorical lists unused categories too
     uniq = list(counts.index)
+    if not uniq:
+        raise InputError(f"`--exposure` column '{col}' is missing in every row; check the column name or the file")
     if len(uniq) != 2:
         how = ("a two-group comparison needs exactly 2: recode the column to two groups or keep only the "
                "rows of two groups")

@@ -93,7 +93,7 @@ class Plan:
 
 def make_plan(values: np.ndarray, t: np.ndarray, codes: np.ndarray, n_strata: int) -> Plan:
     """Prepare the engine for ``values`` (n, k), labels ``t`` and stratum codes 0..S-1."""
-    n_units, k = values.shape
+    k = values.shape[1]
     n = np.bincount(codes, minlength=n_strata)
     n1 = np.bincount(codes, weights=t, minlength=n_strata).astype(np.int64)
     draw_exposed = n1 <= n - n1
@@ -140,8 +140,8 @@ def _draw_threshold(vals: np.ndarray, m_s: int, gen, r: int) -> np.ndarray:
     unit with ``u < c`` plus ``m_s - #{u < c}`` of the units with ``u == c``, picked by the
     smallest 64-bit random keys. This is "the ``m_s`` smallest of i.i.d. random keys" with the
     byte as the leading digit, so the subset is uniform; it needs no sort of the stratum, and
-    the random bytes of a chunk of rows come in one call. The sums are plain numpy reductions (not BLAS),
-    the same for every batch size, thread count and number of value columns.
+    the random bytes of a chunk of rows come in one call. The sums are plain numpy reductions
+    (not BLAS), the same for every batch size, thread count and number of value columns.
     """
     n_s = vals.shape[1]
     out = np.empty((vals.shape[0], r))
@@ -280,15 +280,16 @@ def iter_batches(plan: Plan, resamples: int, seed: int, batch_size: int | None =
 
     Blocks of ``BLOCK`` resamples are the unit of randomness; a batch is a run of resamples
     (``batch_size`` of them, any positive int) made of pieces of blocks. With ``workers > 1``
-    whole blocks are drawn in parallel threads; the result is the same.
+    whole blocks are drawn in parallel threads (at most the CPU count); the result is the same.
+    ``workers=None`` means 1: on a loaded 2-core machine 2 threads measured slower than 1.
     """
     if batch_size is None:
         batch_size = default_batch(plan, resamples)
-    if workers is None:  # threads pay off only when a block's draws are long numpy calls
-        big = not plan.binary and sum(v.shape[1] for _, v, _ in plan.large) >= 50_000
-        workers = min(2, os.cpu_count() or 1) if big else 1
     gens = block_generators(seed, resamples)
     bounds = [(j * BLOCK, min(resamples, (j + 1) * BLOCK)) for j in range(len(gens))]
+    if workers is None:  # 2 threads measured slower than 1 on a loaded 2-core machine
+        workers = 1
+    workers = max(1, min(int(workers), os.cpu_count() or 1, len(bounds) or 1))
     # Each block is drawn whole (its draws do not depend on how it is cut into batches);
     # blocks are then cut into batches of ``batch_size``.
     done = 0

@@ -69,6 +69,7 @@ def _build_parser() -> argparse.ArgumentParser:
     analyze = sub.add_parser("analyze", help="analyse a data file")
     analyze.add_argument("data", nargs="?", help="CSV, Parquet, Stata (.dta) or SAS (.xpt) file")
     analyze.add_argument("--spec", help="TOML analysis file; flags given here override it")
+    analyze.add_argument("--encoding", help="text encoding of a CSV file (default: UTF-8)")
     for flag, dest, typ, text in _OPTIONS:
         analyze.add_argument(flag, dest=dest, type=str, default=None, help=text)
     analyze.add_argument("--censoring-weights", dest="censoring_weights", action="store_const",
@@ -146,7 +147,7 @@ def _run_analyze(args) -> int:
     path = Path(options.pop("data_path"))
     folder = prepare_folder(args.out, inputs=[path, args.spec], overwrite=args.overwrite) \
         if args.out else None
-    table = read_table(path)
+    table = read_table(path, encoding=args.encoding)
     progress, bar = _progress(args.quiet)
     source = {"file": path.name, "sha256": _sha256(path), "rows": int(len(table)),
               "command": "stratagap " + " ".join(sys.argv[1:])}

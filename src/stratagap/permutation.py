@@ -179,7 +179,10 @@ def _summary(null, weights):
     qs = (0.001, 0.01, 0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975, 0.99, 0.999)
     finite = np.isfinite(null)
     x = null[finite]
-    w = np.ones(x.size) / max(x.size, 1) if weights is None else weights[finite] / weights[finite].sum()
+    if weights is None:
+        w = np.ones(x.size) / max(x.size, 1)
+    else:
+        w = weights[finite] / weights[finite].sum()
     order = np.argsort(x, kind="stable")
     cw = np.cumsum(w[order])
     quant = {f"q{q:g}": float(x[order][min(np.searchsorted(cw, q - 1e-12), x.size - 1)])
@@ -275,7 +278,7 @@ def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
     batch_size : resamples per batch (None: a 32 MiB budget for the sums); results do not
         depend on it
     progress : optional callable ``progress(n_done, n_total)`` called after each batch
-    workers : threads drawing blocks of resamples (None: 2 for large data, else 1); results
+    workers : threads drawing blocks of resamples (None: 1; at most the CPU count); results
         do not depend on it
 
     Returns
@@ -369,7 +372,8 @@ def null_statistics(values, t, labels, *, estimand, resamples, seed, batch_size=
     w = _weights(n, n1, estimand)
     totals = np.stack([np.bincount(codes, weights=v[:, j], minlength=n_strata)
                        for j in range(v.shape[1])])
-    designs = [_normal.Design(n, n1, w, totals[j:j + 1], "mean_difference") for j in range(v.shape[1])]
+    designs = [_normal.Design(n, n1, w, totals[j:j + 1], "mean_difference")
+               for j in range(v.shape[1])]
     obs_sums = _exposed_sums(v, tk, codes, n_strata)
     observed = np.array([d.stat(obs_sums[j:j + 1, :, None])[0] for j, d in enumerate(designs)])
     plan = _mc.make_plan(v, tk, codes, n_strata)

@@ -25,7 +25,7 @@ from . import permutation as _permutation
 from . import scores as _scores
 from . import sensitivity as _sensitivity
 from . import strata as _strata
-from ._errors import InputError, StratagapWarning
+from ._errors import InputError, StrataWarning, StratagapWarning
 from .result import AnalysisResult, CAUTIONS, versions
 from .spec import AnalysisSpec
 from .verdict import write_verdict
@@ -186,8 +186,13 @@ def _tests(spec, y, t, X, labels, binary, progress) -> dict:
                                         **common)
     out = {"main": main, "values": values, "adjusted": spec.statistic in ("adjusted", "studentized")}
     if spec.statistic == "adjusted":
-        out["studentized"] = _permutation.stratified_test(values, t, labels,
-                                                          statistic="studentized", **common)
+        counts = np.bincount(labels, weights=t), np.bincount(labels, weights=1 - t)
+        if min(counts[0].min(), counts[1].min()) >= 2:  # within-group variances need 2 units
+            out["studentized"] = _permutation.stratified_test(values, t, labels,
+                                                              statistic="studentized", **common)
+        else:
+            warnings.warn("The studentized (weak-null) companion test was not run: some strata "
+                          "hold fewer than 2 units of a group (e.g. matched pairs).", StrataWarning)
     if binary and spec.statistic != "sum":
         out["sum"] = _permutation.stratified_test(y, t, labels, statistic="sum", **common)
     return out

@@ -20,12 +20,11 @@ from contextlib import contextmanager
 from dataclasses import dataclass, field
 
 import matplotlib
-
-matplotlib.use("Agg", force=False)  # headless: never needs a display
-
-import matplotlib.colors as mcolors  # noqa: E402
-from matplotlib.backends.backend_agg import FigureCanvasAgg  # noqa: E402
-from matplotlib.figure import Figure  # noqa: E402
+import matplotlib.colors as mcolors
+# Figures get the Agg canvas directly, so nothing here needs a display or touches the global
+# pyplot backend (a notebook's inline backend stays as the user set it).
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
 
 __all__ = ["PALETTE", "EXPOSED", "REFERENCE", "ACCENT", "ALERT", "NEUTRAL", "INK", "SUNSET",
            "new_figure", "figure_bytes", "plain", "ResultView", "view_of", "style"]

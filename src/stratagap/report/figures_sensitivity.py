@@ -121,24 +121,30 @@ def plot_tipping(result) -> Figure:
         cy = np.array([c["outcome_shift"] for c in curve], dtype=float)
         ax.plot(cx, cy, color=INK, linestyle=(0, (4, 2)), linewidth=1.6,
                 label="corrected CI limit reaches the null")
-    marks = list(tip.get("benchmarks") or [])
-    for m in marks:
+    points = []
+    for m in tip.get("benchmarks") or []:
         x, y = m.get("prevalence_gap"), m.get("outcome_shift")
         if x is None or y is None:
             continue
         x, y = abs(float(x)), abs(float(y)) if measure == "difference" else float(y)
         xmax, ymax = max(xmax, x * 1.1), max(ymax, y * 1.1)
-        crosses = bool(m.get("ci_includes_null"))
+        points.append((x, y, plain(m.get("name", "")), bool(m.get("ci_includes_null"))))
+    ax.set_xlim(min(float(gx.min()), 0.0), xmax)
+    ax.set_ylim(min(float(gy.min()), 0.0), ymax)
+    placed = []  # label anchors in axes fractions, to step labels of nearby points apart
+    for x, y, name, crosses in sorted(points, key=lambda p: (p[1], p[0])):
         ax.plot([x], [y], marker="o", markersize=6.5, linestyle="none", zorder=4,
                 markerfacecolor=ALERT if crosses else "white", markeredgecolor=INK)
-        ax.annotate(plain(m.get("name", "")), xy=(x, y), xytext=(5, 4),
-                    textcoords="offset points", fontsize=8, color=INK, zorder=5,
+        fx, fy = ax.transLimits.transform((x, y))
+        lift = sum(1 for px, py in placed if abs(px - fx) < 0.12 and abs(py - fy) < 0.05)
+        placed.append((fx, fy + 0.045 * lift))
+        ax.annotate(name, xy=(x, y), xytext=(5, 4 + 11 * lift), textcoords="offset points",
+                    fontsize=8, color=INK, zorder=5,
+                    arrowprops={"arrowstyle": "-", "color": MUTED, "lw": 0.6} if lift else None,
                     bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": "none", "alpha": 0.8})
-    if marks:
+    if points:
         ax.plot([], [], marker="o", linestyle="none", markerfacecolor="white",
                 markeredgecolor=INK, label="measured covariate (filled: would tip the CI)")
-    ax.set_xlim(min(float(gx.min()), 0.0), xmax)
-    ax.set_ylim(float(gy.min()) if gy.min() < 0 else 0.0, ymax)
     ax.set_xlabel("prevalence gap of U: p(U=1 | exposed) − p(U=1 | reference)")
     ax.set_ylabel("effect of U on the outcome" + (" (mean shift)" if measure == "difference"
                                                    else " (risk ratio)"))
