@@ -174,6 +174,12 @@ def build(frame: pd.DataFrame, covariates, formula, t) -> Design:
                 and (k == n or (k > 50 and k > 0.5 * n))):
             raise InputError(f"`--covariates` column '{c}' looks like an identifier ({k} distinct values in {n} rows); "
                              "remove it from the covariates (or group it into a few categories)")
+        if not is_categorical(s) and k == n >= 20:
+            v = np.sort(pd.to_numeric(s, errors="coerce").to_numpy(dtype=float))
+            if np.all(np.diff(v) == 1):  # distinct consecutive integers: a record number
+                warnings.warn(f"covariate '{c}' looks like a row identifier ({k} distinct consecutive "
+                              f"integers in {n} rows); remove it unless it is a real measurement",
+                              DataWarning, stacklevel=3)
         kept.append(c)
     if not kept:
         raise InputError("no covariates are left after dropping constant ones "

@@ -11,6 +11,7 @@ from __future__ import annotations
 import argparse
 import hashlib
 import os
+import shlex
 import sys
 import traceback
 from pathlib import Path
@@ -149,10 +150,9 @@ def _run_analyze(args) -> int:
         if args.out else None
     table = read_table(path, encoding=args.encoding)
     progress, bar = _progress(args.quiet)
-    source = {"file": path.name, "sha256": _sha256(path), "rows": int(len(table)),
-              "command": "stratagap " + " ".join(sys.argv[1:])}
+    source = {"file": path.name, "sha256": _sha256(path), "rows": int(len(table))}
     try:
-        result = analyze(table, progress=progress, source=source,
+        result = analyze(table, progress=progress, source=source, command=args.command_line,
                          exposure=options.pop("exposure"), outcome=options.pop("outcome"),
                          covariates=options.pop("covariates", None), data_path=str(path),
                          **options)
@@ -187,12 +187,12 @@ def _run_demo(args) -> int:
     write_atomic(csv_path, public.to_csv(index=False))
     progress, bar = _progress(args.quiet)
     source = {"file": csv_path.name, "sha256": _sha256(csv_path), "rows": int(len(public)),
-              "command": "stratagap " + " ".join(sys.argv[1:]), "invented": True}
+              "invented": True}
     try:
         result = analyze(public, exposure="shift", exposed_value="nights", outcome="systolic_bp",
                          covariates=list(DEMO_COVARIATES),
                          negative_control="hearing_db", seed=seed, progress=progress,
-                         source=source)
+                         source=source, command=args.command_line)
     finally:
         if bar is not None:
             bar.close()
@@ -219,8 +219,10 @@ def _print(result, args, truth=None):
 def main(argv=None) -> int:
     """Entry point; returns the exit code."""
     parser = _build_parser()
+    argv = sys.argv[1:] if argv is None else [str(a) for a in argv]
     try:
         args = parser.parse_args(argv)
+        args.command_line = "stratagap " + " ".join(shlex.quote(a) for a in argv)
         if args.command is None:
             parser.print_help()
             return 2

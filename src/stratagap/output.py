@@ -21,6 +21,11 @@ __all__ = ["prepare_folder", "write_atomic", "write_result", "DEMO_MARKER"]
 
 DEMO_MARKER = ".stratagap-demo"
 
+#: Every name this package may write into an output folder (the report adds figures/).
+OUTPUT_NAMES = ("results.json", "run.json", "balance.csv", "strata.csv", "report.html",
+                "baseline.csv", "baseline.md", "baseline.tex", "shift_work.csv", "truth.json",
+                "figures", DEMO_MARKER)
+
 
 def prepare_folder(out: str | Path, *, inputs=(), overwrite: bool = False,
                    demo: bool = False) -> Path:
@@ -34,6 +39,9 @@ def prepare_folder(out: str | Path, *, inputs=(), overwrite: bool = False,
         if resolved == inp or inp in resolved.parents:
             raise InputError(f"`--out` {str(out)!r} is the input file or lies inside it; "
                              "choose a separate folder")
+        if inp.parent == resolved and inp.name in OUTPUT_NAMES or resolved / "figures" in inp.parents:
+            raise InputError(f"`--out` {str(out)!r} would overwrite the input file {inp.name!r}; "
+                             "choose another folder")
     if resolved.exists() and not resolved.is_dir():
         raise InputError(f"`--out` {str(out)!r} exists and is not a folder; choose a folder path")
     if resolved.is_dir() and any(resolved.iterdir()):

@@ -34,7 +34,8 @@ __all__ = ["analyze"]
 
 
 def analyze(table, *, exposure: str, outcome: str, covariates=None, progress=None,
-            source: dict | None = None, **options) -> AnalysisResult:
+            source: dict | None = None, command: str | None = None,
+            **options) -> AnalysisResult:
     """Adjusted, permutation-tested comparison of an outcome between two non-randomized groups.
 
     Parameters
@@ -50,6 +51,9 @@ def analyze(table, *, exposure: str, outcome: str, covariates=None, progress=Non
         Called while resampling (the CLI passes a progress bar).
     source : dict, optional
         Description of the input (file name, SHA-256), stored on the result.
+    command : str, optional
+        The command line that asked for the analysis; kept in ``result.run`` (``run.json``),
+        not in ``results.json``, whose bytes must not depend on the output folder.
     **options
         Any other field of :class:`stratagap.spec.AnalysisSpec` (``estimand="ate"``,
         ``n_strata=5``, ``resamples=10000``, ``seed=2026``, ``alpha=0.05``, ...).
@@ -77,7 +81,8 @@ def analyze(table, *, exposure: str, outcome: str, covariates=None, progress=Non
         if key not in seen:
             seen.add(key)
             recorded.append({"kind": w.category.__name__, "message": str(w.message)})
-    run = {"seconds": round(time.perf_counter() - started, 3), "versions": versions()}
+    run = {"seconds": round(time.perf_counter() - started, 3), "versions": versions(),
+           "command": command}
     return AnalysisResult(spec=spec, source=source or {}, warnings=tuple(recorded),
                           cautions=CAUTIONS, run=run, **parts)
 
@@ -146,11 +151,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
                                      outcome_type=prepared.outcome_type,
                                      truncate=spec.truncate_weights,
                                      score=propensity.score[used], estimand_label=population)
-    per = adjusted.per_stratum
-    heterogeneity = {"cochran_q": _heterogeneity.cochran_q(
-        [s["estimate"] for s in per], [s["se"] for s in per]).to_dict()}
-    if binary:
-        heterogeneity["breslow_day"] = _heterogeneity.breslow_day(y, t, labels).to_dict()
+    heterogeneity = _heterogeneity_block(adjusted.per_stratum, y, t, labels, binary)
 
     sensitivity = _sensitivity_block(spec, prepared, tests, adjusted, risk_ratio, y, t, X, labels,
                                      used, binary)
@@ -164,7 +165,9 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
         sensitivity=sensitivity, negative_control=negative,
         arrays={"score": propensity.score, "t_all": prepared.t, "keep": keep, "used": used,
                 "labels": labels, "t": t, "y": y,
-                "row_ids": getattr(prepared, "row_ids", None)},
+                "row_ids": prepared.row_ids,
+                # covariate columns of the analysed rows, for the baseline table
+                "raw": prepared.raw.iloc[used].reset_index(drop=True)},
     )
     parts["verdict"] = write_verdict(spec=spec, **{k: parts[k] for k in (
         "crude", "adjusted", "tests", "balance", "sensitivity", "cross_checks",
@@ -195,6 +198,19 @@ def _tests(spec, y, t, X, labels, binary, progress) -> dict:
                           "hold fewer than 2 units of a group (e.g. matched pairs).", StrataWarning)
     if binary and spec.statistic != "sum":
         out["sum"] = _permutation.stratified_test(y, t, labels, statistic="sum", **common)
+    return out
+
+
+def _heterogeneity_block(per_stratum, y, t, labels, binary) -> dict:
+    """Cochran's Q (and Breslow-Day for binary outcomes); undefined with a single stratum."""
+    usable = [s for s in per_stratum if s["se"] is not None and np.isfinite(s["se"]) and s["se"] > 0]
+    if len(usable) < 2:
+        return {"cochran_q": None, "note": "fewer than 2 strata with a standard error: "
+                                           "heterogeneity across strata is not defined"}
+    out = {"cochran_q": _heterogeneity.cochran_q([s["estimate"] for s in usable],
+                                                 [s["se"] for s in usable]).to_dict()}
+    if binary:
+        out["breslow_day"] = _heterogeneity.breslow_day(y, t, labels).to_dict()
     return out
 
 
@@ -252,7 +268,9 @@ def _negative_control(spec, prepared, used, t, X, labels):
                                         batch_size=spec.batch_size)
     est = _effects.stratified_regression(nc[ok], t[ok], X[ok], lab, estimand=spec.estimand,
                                          measure="difference", alpha=spec.alpha,
-                                         interaction_min_extra=spec.interaction_min_extra)
+                                         interaction_min_extra=spec.interaction_min_extra,
+                                         population=f"analysed units with {spec.negative_control!r} recorded",
+                                         names=prepared.design_names)
     return {"column": spec.negative_control, "n": int(ok.sum()), "estimate": est, "test": test,
             "alarm": bool(test.p_value < spec.alpha)}
 

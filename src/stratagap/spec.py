@@ -14,6 +14,8 @@ import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
+
 from ._errors import InputError
 from ._rng import check_seed
 
@@ -95,6 +97,8 @@ def _choice(value, allowed, flag):
 
 
 def _int_in(value, lo, hi, flag, hint=""):
+    if isinstance(value, (bool, np.bool_)):
+        raise InputError(f"`{flag}` must be a whole number; got {value!r}{hint}")
     if isinstance(value, bool) or not isinstance(value, int):
         try:
             as_float = float(value)

@@ -126,7 +126,7 @@ def build_context(view, figures: dict, *, compact: bool) -> dict:
         "benchmarks": tip.get("benchmarks") or [],
         "negative": data.get("negative_control"), "verdict": data.get("verdict") or "",
         "cautions": data.get("cautions") or [], "figures": figures,
-        "spec_toml": spec_toml(data), "command": source.get("command"),
+        "spec_toml": spec_toml(data), "command": run.get("command") or source.get("command"),
         "seed": (data.get("spec") or {}).get("seed"), "run": run,
         "versions": (run.get("versions") or {}), "fmt": _f,
     }
