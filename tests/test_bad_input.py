@@ -157,12 +157,14 @@ def test_undecodable_encoding_is_a_clean_error(tmp_path, frame, capsys):
     cli_error(capsys, cli_args(path), "latin1.csv", "UTF-8", "--encoding")
 
 
-@pytest.mark.xfail(strict=True, reason="the reader's message advises `--encoding latin-1` but the "
-                   "CLI has no --encoding option (nor AnalysisSpec an encoding field): "
-                   "see /tmp/robustness_findings.md")
-def test_the_advised_encoding_flag_exists(tmp_path, frame, capsys):
+def test_the_advised_encoding_flag_reads_the_file(tmp_path, frame, capsys):
+    # The error above advises --encoding; following the advice must work.
     path = _latin1_csv(tmp_path, frame)
-    assert main(cli_args(path, "--encoding", "latin-1")) == 0, capsys.readouterr().err
+    out = tmp_path / "out"
+    assert main(cli_args(path, "--encoding", "latin-1", "--out", str(out))) == 0, \
+        capsys.readouterr().err
+    levels = {row["level"] for row in json.loads((out / "results.json").read_text())["balance"]["rows"]}
+    assert "portéur" in levels
 
 
 def test_duplicate_column_names_in_file(tmp_path, capsys):
@@ -591,26 +593,15 @@ def test_subprocess_header_only(tmp_path):
 
 
 # ----------------------------------------------------------------------- reproducibility
-def _results_bytes(path, workdir, env=None, subprocess_run=False):
-    """results.json of one run with the output folder ``out`` inside ``workdir``.
-
-    The same relative ``--out out`` is used for every run (from a different working folder),
-    so that the command line recorded in the result is the same for runs being compared.
-    """
-    workdir.mkdir(parents=True, exist_ok=True)
-    argv = cli_args(path, "--resamples", "500", "--seed", "11", "--out", "out")
+def _results_bytes(path, out, env=None, subprocess_run=False):
+    """results.json of one run into the folder ``out`` (in-process or as a subprocess)."""
+    argv = cli_args(path, "--resamples", "500", "--seed", "11", "--out", str(out))
     if subprocess_run:
-        proc = subprocess.run([sys.executable, "-m", "stratagap.cli", *argv], capture_output=True,
-                              text=True, env=env, cwd=workdir, timeout=300)
+        proc = _subprocess(argv, env=env)
         assert proc.returncode == 0, proc.stderr
     else:
-        here = os.getcwd()
-        os.chdir(workdir)
-        try:
-            assert main(argv) == 0
-        finally:
-            os.chdir(here)
-    return (workdir / "out" / "results.json").read_bytes()
+        assert main(argv) == 0
+    return (out / "results.json").read_bytes()
 
 
 def _strip_source(data: bytes) -> dict:
@@ -621,10 +612,12 @@ def _strip_source(data: bytes) -> dict:
 
 
 def test_recorded_command_is_the_one_given(csv, tmp_path, capsys):
-    # main(argv) must record argv, not the host process's sys.argv (pytest's, in-process).
+    # main(argv) must record argv, not the host process's sys.argv (pytest's, in-process);
+    # it lives in run.json with the timings, so results.json does not depend on --out.
     assert main(cli_args(csv, "--out", str(tmp_path / "o"))) == 0
-    command = json.loads((tmp_path / "o" / "results.json").read_text())["source"]["command"]
+    command = json.loads((tmp_path / "o" / "run.json").read_text())["command"]
     assert command.startswith("stratagap analyze") and "--exposure grp" in command, command
+    assert "--out" not in (tmp_path / "o" / "results.json").read_text()
 
 
 def test_same_inputs_and_seed_give_byte_identical_results_json(csv, tmp_path, capsys):

@@ -15,7 +15,7 @@ from hypothesis import strategies as st
 from scipy import stats
 
 from stratagap._errors import InputError
-from stratagap import _rosenbaum
+from stratagap import _nchyper, _rosenbaum
 from stratagap.sensitivity import (
     covariate_benchmarks,
     e_value,
@@ -279,7 +279,7 @@ def test_cut_moments_match_enumeration():
     rng = np.random.default_rng(4)
     v = np.sort(rng.normal(size=7))
     for n1 in (1, 3, 5):
-        mu, var, var_hi, var_lo, exact = _rosenbaum._cut_moments(7, n1, v[None, :], 2.3)
+        mu, var, var_hi, var_lo, exact = _nchyper._cut_moments(7, n1, v[None, :], 2.3)
         assert exact
         for k in range(8):
             u = np.r_[np.zeros(7 - k), np.ones(k)]
@@ -299,20 +299,20 @@ def test_cut_moments_match_enumeration():
 
 def test_nch_moments_against_scipy_and_large_stratum():
     K = np.arange(0, 61, 7)
-    mean, var, exact = _rosenbaum._nch_moments(60, K, 25, 1.8)
+    mean, var, exact = _nchyper._nch_moments(60, K, 25, 1.8)
     ref_m, ref_v = stats.nchypergeom_fisher.stats(60, K, 25, 1.8, moments="mv")
     assert exact
     np.testing.assert_allclose(mean, ref_m, rtol=1e-9, atol=1e-9)
     np.testing.assert_allclose(var, ref_v, rtol=1e-8, atol=1e-9)
     # large-stratum approximation: exact at Gamma = 1 (hypergeometric), O(1/n) error otherwise
-    m1, v1 = _rosenbaum._nch_moments_large(60.0, K.astype(float), 25.0, 1.0)
+    m1, v1 = _nchyper._nch_moments_large(60.0, K.astype(float), 25.0, 1.0)
     with np.errstate(divide="ignore", invalid="ignore"):  # scipy's kurtosis term at K = 0
         h_mean, h_var = stats.hypergeom.stats(60, K, 25, moments="mv")
     np.testing.assert_allclose(m1, h_mean, rtol=1e-12)
     np.testing.assert_allclose(v1, h_var, rtol=1e-12, atol=1e-12)
     K = np.arange(200, 1801, 400).astype(float)
-    ma, va = _rosenbaum._nch_moments_large(2000.0, K, 600.0, 2.0)
-    me, ve, _ = _rosenbaum._nch_moments(2000, K, 600, 2.0)
+    ma, va = _nchyper._nch_moments_large(2000.0, K, 600.0, 2.0)
+    me, ve, _ = _nchyper._nch_moments(2000, K, 600, 2.0)
     np.testing.assert_allclose(ma, me, rtol=1e-3)
     np.testing.assert_allclose(va, ve, rtol=2e-2)
 

@@ -55,17 +55,18 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from . import _engine_jit as _jit
 from ._rng import BLOCK, block_generators
 
 #: Strata with at most this many units are shuffled together by sorting random keys.
 SMALL = 64
 #: Strata above ROWS_MAX_N units with m_s * CHOICE_RATIO < n_s use Generator.choice.
 CHOICE_RATIO = 6
-#: Random bytes per chunk of rows for the threshold draw (memory ~ 11 bytes each).
-THRESHOLD_CHUNK = 2**21
-#: Strata up to this size draw a chunk of rows with 2-D operations of ROWS_CHUNK bytes.
+#: Random bytes per chunk of rows for the threshold draw (compiled: ~1 byte each in memory;
+#: numpy twin: ~25 bytes each).
+THRESHOLD_CHUNK = 2**20
+#: Generator.choice is considered only for strata above this size.
 ROWS_MAX_N = 32768
-ROWS_CHUNK = 2**18
 #: Keys per chunk of rows for the small-strata path.
 SMALL_CHUNK_KEYS = 2**21
 #: Default budget (bytes) for the sums of one batch.
@@ -89,10 +90,15 @@ class Plan:
     small_seg: np.ndarray  # (n_small,) position of the unit's stratum in small_idx
     small_start: np.ndarray  # (len(small_idx),) first unit of each small stratum
     binary: bool  # one binary column: hypergeometric path
+    jit: bool = False  # compiled kernels (same results as the numpy twins)
 
 
-def make_plan(values: np.ndarray, t: np.ndarray, codes: np.ndarray, n_strata: int) -> Plan:
-    """Prepare the engine for ``values`` (n, k), labels ``t`` and stratum codes 0..S-1."""
+def make_plan(values: np.ndarray, t: np.ndarray, codes: np.ndarray, n_strata: int,
+              jit: bool | None = None) -> Plan:
+    """Prepare the engine for ``values`` (n, k), labels ``t`` and stratum codes 0..S-1.
+
+    ``jit``: use the compiled kernels (None: when available, see :mod:`stratagap._engine_jit`).
+    """
     k = values.shape[1]
     n = np.bincount(codes, minlength=n_strata)
     n1 = np.bincount(codes, weights=t, minlength=n_strata).astype(np.int64)
@@ -129,82 +135,32 @@ def make_plan(values: np.ndarray, t: np.ndarray, codes: np.ndarray, n_strata: in
         small_seg = np.empty(0, dtype=np.int64)
         small_start = np.empty(0, dtype=np.int64)
     return Plan(k, n_strata, n, n1, m, draw_exposed, totals, large, small_idx, small_values,
-                small_seg, small_start, binary)
+                small_seg, small_start, binary, _jit.jit_available() if jit is None else jit)
 
 
-def _draw_threshold(vals: np.ndarray, m_s: int, gen, r: int) -> np.ndarray:
+def _draw_threshold(vals: np.ndarray, m_s: int, gen, r: int, jit: bool) -> np.ndarray:
     """Sums (k, r) of ``vals`` (k, n_s) over r uniform ``m_s``-subsets (random-byte threshold).
 
     Each unit gets a random byte per resample. With ``c`` the byte value at which the count of
     smaller bytes first reaches ``m_s`` (``#{u < c} <= m_s < #{u <= c}``), the subset is every
     unit with ``u < c`` plus ``m_s - #{u < c}`` of the units with ``u == c``, picked by the
     smallest 64-bit random keys. This is "the ``m_s`` smallest of i.i.d. random keys" with the
-    byte as the leading digit, so the subset is uniform; it needs no sort of the stratum, and
-    the random bytes of a chunk of rows come in one call. The sums are plain numpy reductions
-    (not BLAS), the same for every batch size, thread count and number of value columns.
+    byte as the leading digit, so the subset is uniform; it needs no sort of the stratum.
+    Streams, per chunk of ``max(1, THRESHOLD_CHUNK // n_s)`` resamples: the bytes of the whole
+    chunk in one ``random_raw`` call, then one 64-bit key for every unit at ``c`` of every row
+    of the chunk, row by row. The selection and the sums run in :mod:`stratagap._engine_jit`
+    (compiled, or its numpy twin: bit-identical, fixed summation order).
     """
     n_s = vals.shape[1]
     out = np.empty((vals.shape[0], r))
     rows = max(1, THRESHOLD_CHUNK // n_s)
-    keep = np.empty(n_s, dtype=bool)
-    tmp = np.empty(n_s)  # one row: stays in cache, unlike a (rows, n_s) temporary
-    start = (256 * m_s) // n_s
     for lo in range(0, r, rows):
         h = min(r, lo + rows) - lo
         u = gen.bit_generator.random_raw((h * n_s + 7) // 8).view(np.uint8)[:h * n_s]
         u = u.reshape(h, n_s)
-        for i in range(h):
-            ui, c = u[i], start
-            lt, le = np.count_nonzero(ui < c), np.count_nonzero(ui <= c)
-            while not lt <= m_s < le:  # usually 0-2 steps: the count is near its mean
-                c += 1 if le <= m_s else -1
-                lt, le = np.count_nonzero(ui < c), np.count_nonzero(ui <= c)
-            np.less(ui, c, out=keep)
-            extra = None
-            if m_s > lt:  # the rest among the units at byte c, by 64-bit random keys
-                tied = np.flatnonzero(ui == c)
-                keys = gen.bit_generator.random_raw(tied.size)
-                extra = tied[np.argsort(keys, kind="stable")[: m_s - lt]]
-            for j in range(vals.shape[0]):
-                total = np.multiply(vals[j], keep, out=tmp).sum()
-                if extra is not None:
-                    total += vals[j][np.sort(extra)].sum()
-                out[j, lo + i] = total
-    return out
-
-
-def _draw_threshold_rows(vals: np.ndarray, m_s: int, gen, r: int) -> np.ndarray:
-    """:func:`_draw_threshold` for moderate strata: the same draw, rows of a chunk together
-    (2-D numpy operations amortize the per-call cost that dominates for small ``n_s``)."""
-    n_s = vals.shape[1]
-    out = np.empty((vals.shape[0], r))
-    rows = max(1, ROWS_CHUNK // n_s)
-    for lo in range(0, r, rows):
-        h = min(r, lo + rows) - lo
-        u = gen.bit_generator.random_raw((h * n_s + 7) // 8).view(np.uint8)[:h * n_s]
-        u = u.reshape(h, n_s)
-        c = np.full(h, (256 * m_s) // n_s, dtype=np.int64)
-        while True:
-            cu = c[:, None].astype(np.uint8)
-            below = np.count_nonzero(u < cu, axis=1)
-            upto = np.count_nonzero(u <= cu, axis=1)
-            down, up = below > m_s, upto <= m_s
-            if not (down.any() or up.any()):
-                break
-            c = c - down + up
-        keep = u < cu
-        tied = np.flatnonzero(u == cu)
-        row, col = tied // n_s, tied % n_s
-        keys = gen.bit_generator.random_raw(tied.size)
-        order = np.lexsort((keys, row))  # by row, then random key
-        first = np.searchsorted(row[order], np.arange(h))
-        rank = np.arange(order.size) - first[row[order]]
-        pick = np.sort(order[rank < (m_s - below)[row[order]]])
-        tmp = np.empty((h, n_s))
-        for j in range(vals.shape[0]):
-            total = np.multiply(keep, vals[j], out=tmp).sum(axis=1)
-            total += np.bincount(row[pick], weights=vals[j][col[pick]], minlength=h)
-            out[j, lo:lo + h] = total
+        c, lt, nt = _jit.thresholds(u, m_s, jit)
+        keys = gen.bit_generator.random_raw(int(nt.sum()))
+        out[:, lo:lo + h] = _jit.masked_sums(u, c, lt, nt, keys, m_s, vals, jit)
     return out
 
 
@@ -260,8 +216,7 @@ def _fill_block(plan: Plan, gen, out: np.ndarray) -> None:
                 idx = g_large.choice(vals.shape[1], m_s, replace=False, shuffle=False)
                 drawn[:, b] = [row[idx].sum() for row in vals]  # per row: same for any k
         else:
-            draw = _draw_threshold_rows if vals.shape[1] <= ROWS_MAX_N else _draw_threshold
-            drawn = draw(vals, m_s, g_large, r)
+            drawn = _draw_threshold(vals, m_s, g_large, r, plan.jit)
         out[:, s, :] = drawn if plan.draw_exposed[s] else plan.totals[:, s, None] - drawn
 
 
