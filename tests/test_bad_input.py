@@ -160,10 +160,9 @@ def test_undecodable_encoding_is_a_clean_error(tmp_path, frame, capsys):
 def test_the_advised_encoding_flag_reads_the_file(tmp_path, frame, capsys):
     # The error above advises --encoding; following the advice must work.
     path = _latin1_csv(tmp_path, frame)
-    out = tmp_path / "out"
-    assert main(cli_args(path, "--encoding", "latin-1", "--out", str(out))) == 0, \
-        capsys.readouterr().err
-    levels = {row["level"] for row in json.loads((out / "results.json").read_text())["balance"]["rows"]}
+    argv = [a for a in cli_args(path, "--encoding", "latin-1", "--format", "json") if a != "--quiet"]
+    assert main(argv) == 0, capsys.readouterr().err
+    levels = {row["level"] for row in json.loads(capsys.readouterr().out)["balance"]["rows"]}
     assert "portéur" in levels
 
 
@@ -495,9 +494,6 @@ def test_out_equal_to_the_spec_file(tmp_path, csv, capsys):
     cli_error(capsys, ["analyze", "--spec", str(spec), "--out", str(spec), "--quiet"], "--out")
 
 
-@pytest.mark.xfail(strict=True, reason="with --overwrite an input file inside --out whose name "
-                   "is an output name (strata.csv) is silently replaced: see "
-                   "/tmp/robustness_findings.md")
 def test_overwrite_never_replaces_an_input_file(tmp_path, frame, capsys):
     out = tmp_path / "study"
     out.mkdir()
@@ -509,26 +505,42 @@ def test_overwrite_never_replaces_an_input_file(tmp_path, frame, capsys):
     assert code == 2
 
 
-def test_inputs_are_never_modified(tmp_path, frame, capsys):
-    path = write_csv(tmp_path, _holes(frame))
-    spec = tmp_path / "study.toml"
+@pytest.fixture(scope="module")
+def written(tmp_path_factory):
+    """One CLI run with --out (and the report): the input files, their hashes, the folder."""
+    base = tmp_path_factory.mktemp("written")
+    path = write_csv(base, _holes(make_frame()))
+    spec = base / "study.toml"
     spec.write_text('exposure = "grp"\nexposed-value = "night"\noutcome = "y"\n'
                     'covariates = ["age", "bmi", "role"]\nresamples = 99\n')
     before = (sha256(path), os.stat(path).st_mtime_ns, sha256(spec))
-    assert main(["analyze", str(path), "--spec", str(spec), "--missing", "indicator",
-                 "--out", str(tmp_path / "out"), "--quiet"]) == 0
-    assert main(cli_args(path, "--covariates", "nope")) == 2  # a failing run too
-    capsys.readouterr()
-    assert (sha256(path), os.stat(path).st_mtime_ns, sha256(spec)) == before
+    out = base / "out"
+    code = main(["analyze", str(path), "--spec", str(spec), "--missing", "indicator",
+                 "--out", str(out), "--quiet"])
+    failed = main(cli_args(path, "--covariates", "nope"))  # a failing run too
+    return {"path": path, "spec": spec, "before": before, "out": out, "codes": (code, failed)}
 
 
-def test_outputs_are_atomic_no_temporary_files_left(csv, tmp_path, capsys):
-    out = tmp_path / "out"
-    assert main(cli_args(csv, "--out", str(out))) == 0
+def test_inputs_are_never_modified(written):
+    assert written["codes"] == (0, 2)
+    path, spec = written["path"], written["spec"]
+    assert (sha256(path), os.stat(path).st_mtime_ns, sha256(spec)) == written["before"]
+
+
+def test_outputs_are_atomic_no_temporary_files_left(written):
+    out = written["out"]
     names = sorted(p.name for p in out.rglob("*"))
-    assert "results.json" in names
-    assert not [n for n in names if n.endswith(".tmp")], names
+    assert "results.json" in names and "run.json" in names
+    assert not [n for n in names if n.endswith(".tmp") or n.startswith(".results")], names
     json.loads((out / "results.json").read_text())  # complete, parseable
+
+
+def test_recorded_command_is_the_one_given(written):
+    # main(argv) must record argv, not the host process's sys.argv (pytest's, in-process);
+    # it lives in run.json with the timings, so results.json does not depend on --out.
+    command = json.loads((written["out"] / "run.json").read_text())["command"]
+    assert command.startswith("stratagap analyze") and "--missing indicator" in command, command
+    assert str(written["out"]) not in (written["out"] / "results.json").read_text()
 
 
 def test_a_failed_write_leaves_neither_temporary_nor_partial_file(tmp_path, monkeypatch):
@@ -586,16 +598,10 @@ def test_subprocess_no_overlap(tmp_path, frame):
     _assert_clean_exit_2(_subprocess(cli_args(path, "--covariates", "age,bmi")), "overlap")
 
 
-def test_subprocess_header_only(tmp_path):
-    path = tmp_path / "h.csv"
-    path.write_text("grp,age,bmi,role,y\n")
-    _assert_clean_exit_2(_subprocess(cli_args(path)), "no data rows")
-
-
 # ----------------------------------------------------------------------- reproducibility
 def _results_bytes(path, out, env=None, subprocess_run=False):
     """results.json of one run into the folder ``out`` (in-process or as a subprocess)."""
-    argv = cli_args(path, "--resamples", "500", "--seed", "11", "--out", str(out))
+    argv = cli_args(path, "--resamples", str(RESAMPLES), "--seed", "11", "--out", str(out))
     if subprocess_run:
         proc = _subprocess(argv, env=env)
         assert proc.returncode == 0, proc.stderr
@@ -611,19 +617,12 @@ def _strip_source(data: bytes) -> dict:
     return d
 
 
-def test_recorded_command_is_the_one_given(csv, tmp_path, capsys):
-    # main(argv) must record argv, not the host process's sys.argv (pytest's, in-process);
-    # it lives in run.json with the timings, so results.json does not depend on --out.
-    assert main(cli_args(csv, "--out", str(tmp_path / "o"))) == 0
-    command = json.loads((tmp_path / "o" / "run.json").read_text())["command"]
-    assert command.startswith("stratagap analyze") and "--exposure grp" in command, command
-    assert "--out" not in (tmp_path / "o" / "results.json").read_text()
-
-
-def test_same_inputs_and_seed_give_byte_identical_results_json(csv, tmp_path, capsys):
-    a = _results_bytes(csv, tmp_path / "a")
-    b = _results_bytes(csv, tmp_path / "b")
-    assert a == b
+def test_same_inputs_and_seed_give_byte_identical_results_json(written, tmp_path, capsys):
+    # The same command as the `written` run, into another folder.
+    again = tmp_path / "again"
+    assert main(["analyze", str(written["path"]), "--spec", str(written["spec"]), "--missing",
+                 "indicator", "--out", str(again), "--quiet"]) == 0
+    assert (again / "results.json").read_bytes() == (written["out"] / "results.json").read_bytes()
 
 
 def test_results_do_not_depend_on_row_order(tmp_path, frame, capsys):
@@ -632,9 +631,12 @@ def test_results_do_not_depend_on_row_order(tmp_path, frame, capsys):
     shuffled_dir.mkdir()
     second = write_csv(shuffled_dir, frame.sample(frac=1.0, random_state=8), "rows.csv")
     assert sha256(first) != sha256(second)
-    a = _strip_source(_results_bytes(first, tmp_path / "a"))
-    b = _strip_source(_results_bytes(second, tmp_path / "b"))
-    assert a == b
+    texts = []
+    for path in (first, second):  # stdout JSON is the same text as results.json
+        argv = [a for a in cli_args(path, "--seed", "11", "--format", "json") if a != "--quiet"]
+        assert main(argv) == 0
+        texts.append(capsys.readouterr().out)
+    assert _strip_source(texts[0].encode()) == _strip_source(texts[1].encode())
 
 
 def test_results_do_not_depend_on_thread_count(csv, tmp_path):

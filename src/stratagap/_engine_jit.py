@@ -119,21 +119,31 @@ def _masked_sums_py(u, c, lt, nt, keys, m_s, vals, out):
     h, n = u.shape
     k = vals.shape[0]
     n8 = n - n % 8
+    n64 = n - n % 64
     mask = np.empty(n, dtype=np.uint8)
     table = np.array([0.0, 1.0])  # a lookup, not a bool->float conversion: vectorizes
     kp = 0
+    pos = np.empty(n, dtype=np.int64)
     for i in range(h):
         row = u[i]
-        ci = c[i]
-        for q in range(n):
-            mask[q] = row[q] < ci
+        cu = np.uint8(c[i])
+        for q in range(n):  # uint8 compare and select: vectorizes
+            mask[q] = np.uint8(1) if row[q] < cu else np.uint8(0)
         need = m_s - lt[i]
-        if need > 0:
-            pos = np.empty(nt[i], dtype=np.int64)
-            w = 0
-            for q in range(n):
-                if row[q] == ci:
-                    pos[w] = q
+        if need > 0:  # positions of the units at byte c: a vectorized any-equal test per
+            w = 0     # 64 bytes (about 1 in 4 blocks holds one), then a scan of that block
+            for q0 in range(0, n64, 64):
+                hit = np.uint8(0)
+                for q in range(q0, q0 + 64):
+                    hit |= np.uint8(1) if row[q] == cu else np.uint8(0)
+                if hit:
+                    for z in range(q0, q0 + 64):
+                        if row[z] == cu:
+                            pos[w] = z
+                            w += 1
+            for z in range(n64, n):
+                if row[z] == cu:
+                    pos[w] = z
                     w += 1
             order = np.argsort(keys[kp:kp + nt[i]], kind="mergesort")  # stable
             for z in range(need):

@@ -91,6 +91,7 @@ class Plan:
     small_start: np.ndarray  # (len(small_idx),) first unit of each small stratum
     binary: bool  # one binary column: hypergeometric path
     jit: bool = False  # compiled kernels (same results as the numpy twins)
+    order: np.ndarray | None = None  # row order used (stratum, then values)
 
 
 def make_plan(values: np.ndarray, t: np.ndarray, codes: np.ndarray, n_strata: int,
@@ -135,7 +136,8 @@ def make_plan(values: np.ndarray, t: np.ndarray, codes: np.ndarray, n_strata: in
         small_seg = np.empty(0, dtype=np.int64)
         small_start = np.empty(0, dtype=np.int64)
     return Plan(k, n_strata, n, n1, m, draw_exposed, totals, large, small_idx, small_values,
-                small_seg, small_start, binary, _jit.jit_available() if jit is None else jit)
+                small_seg, small_start, binary, _jit.jit_available() if jit is None else jit,
+                order)
 
 
 def _draw_threshold(vals: np.ndarray, m_s: int, gen, r: int, jit: bool) -> np.ndarray:
@@ -220,13 +222,28 @@ def _fill_block(plan: Plan, gen, out: np.ndarray) -> None:
         out[:, s, :] = drawn if plan.draw_exposed[s] else plan.totals[:, s, None] - drawn
 
 
+#: Rough cost of one resample per unit (s), for batches that report progress every ~0.5 s.
+UNIT_SECONDS = 3e-9
+PROGRESS_SECONDS = 0.5
+
+
 def default_batch(plan: Plan, resamples: int) -> int:
-    """Resamples per batch: about 20 batches (progress steps), whole blocks, sums within
-    ``BATCH_BYTES``."""
+    """Resamples per batch: about 20 batches (progress steps) and at most ~0.5 s of drawing per
+    batch (estimated from the number of units), whole blocks, sums within ``BATCH_BYTES``."""
     per = 8 * plan.k * max(plan.n_strata, 1)
     by_memory = max(BLOCK, (BATCH_BYTES // per) // BLOCK * BLOCK)
     by_progress = max(BLOCK, -(-resamples // (20 * BLOCK)) * BLOCK)
-    return int(min(resamples, by_memory, by_progress))
+    units = plan.n_strata if plan.binary else int(plan.n.sum()) * plan.k  # binary: per stratum
+    units = max(1, units)
+    by_time = max(BLOCK, int(PROGRESS_SECONDS / (UNIT_SECONDS * units)) // BLOCK * BLOCK)
+    return int(min(resamples, by_memory, by_progress, by_time))
+
+
+def default_workers(plan: Plan) -> int:
+    """Threads drawing blocks: every core with the compiled kernels (they release the GIL),
+    else 1 (numpy's per-call overhead holds the GIL often enough that 2 threads measured no
+    faster than 1 on a loaded 2-core machine)."""
+    return (os.cpu_count() or 1) if plan.jit else 1
 
 
 def iter_batches(plan: Plan, resamples: int, seed: int, batch_size: int | None = None,
@@ -236,14 +253,14 @@ def iter_batches(plan: Plan, resamples: int, seed: int, batch_size: int | None =
     Blocks of ``BLOCK`` resamples are the unit of randomness; a batch is a run of resamples
     (``batch_size`` of them, any positive int) made of pieces of blocks. With ``workers > 1``
     whole blocks are drawn in parallel threads (at most the CPU count); the result is the same.
-    ``workers=None`` means 1: on a loaded 2-core machine 2 threads measured slower than 1.
+    ``workers=None``: :func:`default_workers`.
     """
     if batch_size is None:
         batch_size = default_batch(plan, resamples)
     gens = block_generators(seed, resamples)
     bounds = [(j * BLOCK, min(resamples, (j + 1) * BLOCK)) for j in range(len(gens))]
-    if workers is None:  # 2 threads measured slower than 1 on a loaded 2-core machine
-        workers = 1
+    if workers is None:
+        workers = default_workers(plan)
     workers = max(1, min(int(workers), os.cpu_count() or 1, len(bounds) or 1))
     # Each block is drawn whole (its draws do not depend on how it is cut into batches);
     # blocks are then cut into batches of ``batch_size``.

@@ -32,6 +32,8 @@ Mantel, N. & Haenszel, W. (1959). JNCI 22:719-748.
 
 from __future__ import annotations
 
+import contextvars
+import hashlib
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -45,8 +47,8 @@ from ._errors import InputError
 from ._rng import check_seed
 
 __all__ = ["PermutationResult", "residualize", "null_exposed_sums", "null_statistics",
-           "normal_moments", "stratified_test", "STATISTICS", "ENGINES", "ALTERNATIVES",
-           "MAX_RESAMPLES"]
+           "normal_moments", "stratified_test", "shared_draws", "STATISTICS", "ENGINES",
+           "ALTERNATIVES", "MAX_RESAMPLES"]
 
 STATISTICS = ("mean_difference", "studentized", "sum")
 ENGINES = ("auto", "exact", "monte_carlo", "normal")
@@ -55,6 +57,98 @@ SHARP_NULL = "sharp null: no effect for any unit"
 WEAK_NULL = "weak null: zero average effect (asymptotic)"
 #: Relative tolerance for ties between a resampled and the observed statistic (as scipy does).
 TIE_RTOL = 1e-13
+#: Why the normal engine is never chosen automatically (reported on every result).
+NORMAL_NOTE = ("normal engine not chosen automatically: deciding that it cannot change the "
+               "conclusion at alpha needs a Berry-Esseen-type bound for sums sampled without "
+               "replacement with a stated constant, and none is cited here with confidence; "
+               "its p-value is reported beside the chosen engine's (normal_p_value)")
+#: Largest array of null sums (bytes) that :func:`shared_draws` keeps; beyond it, no sharing.
+SHARED_BYTES = 256 * 2**20
+
+_SHARED = contextvars.ContextVar("stratagap_shared_draws", default=None)
+
+
+class shared_draws:  # noqa: N801 - used like a function: ``with shared_draws(...):``
+    """Within this block, Monte Carlo null sums are computed once per value column and reused.
+
+    The draws of the Monte Carlo engine depend only on the stratum sizes, the exposed counts,
+    the seed and the number of resamples; a column's exposed sums depend, besides, only on the
+    column's values in the engine's row order (sorted within strata). So a column's null sums
+    are keyed by exactly those, and a later call (any statistic, any function of this module)
+    that needs the same column gets the same numbers it would have computed: results are
+    bit-identical to running the calls separately. ``columns`` (raw rows of ``t``/``labels``)
+    and the centred values and squares of ``studentized`` columns (what the studentized
+    statistic draws) are drawn together with the first Monte Carlo call on the same ``t`` and
+    ``labels``, so one pass over the permutations serves several tests (e.g. the default test,
+    its studentized companion and the constant-effect inversion). Arrays above
+    ``SHARED_BYTES`` are not kept (the calls then run as usual).
+
+    The object can be entered again later (e.g. around a second stage): its cache lives as
+    long as the object.
+    """
+
+    def __init__(self, t=None, labels=None, columns=(), studentized=()):
+        extra = None
+        if t is not None:
+            extra = (np.asarray(t), np.asarray(labels),
+                     [np.asarray(c, dtype=float) for c in columns],
+                     [np.asarray(c, dtype=float) for c in studentized])
+        self._state = {"cache": {}, "extra": extra}
+        self._tokens = []
+
+    def __enter__(self):
+        self._tokens.append(_SHARED.set(self._state))
+        return self
+
+    def __exit__(self, *exc):
+        _SHARED.reset(self._tokens.pop())
+        return False
+
+
+def _centred(col, codes, n_strata):
+    """Centred values and squares of one column within strata (the studentized statistic)."""
+    n = np.bincount(codes, minlength=n_strata).astype(float)
+    mean_s = np.bincount(codes, weights=col, minlength=n_strata) / n
+    c = col - mean_s[codes]  # centring within strata avoids cancellation in s^2
+    return np.column_stack([c, c**2])
+
+
+def _column_keys(plan, v, seed, resamples):
+    tail = (plan.n.tobytes() + plan.n1.tobytes()
+            + f"|{seed}|{resamples}|{plan.binary}".encode())
+    return [hashlib.blake2b(np.ascontiguousarray(v[plan.order, j]).tobytes() + tail,
+                            digest_size=20).digest() for j in range(v.shape[1])]
+
+
+def _batches(v, tk, codes, n_strata, resamples, seed, batch_size, progress, workers, raw):
+    """Monte Carlo batches ``(lo, hi, sums (k, S, hi - lo))``; reused under shared_draws."""
+    state = _SHARED.get()
+    k = v.shape[1]
+    if state is None or 8 * (k + 4) * n_strata * resamples > SHARED_BYTES:
+        plan = _mc.make_plan(v, tk, codes, n_strata)
+        yield from _mc.iter_batches(plan, resamples, seed, batch_size, progress, workers)
+        return
+    plan = _mc.make_plan(v, tk, codes, n_strata)
+    keys = _column_keys(plan, v, seed, resamples)
+    cache = state["cache"]
+    if not all(key in cache for key in keys):
+        extra, full = state["extra"], v
+        if (extra is not None and not plan.binary and np.array_equal(extra[0], raw[0])
+                and np.array_equal(extra[1], raw[1])):
+            keep = raw[2]
+            more = [c[keep][:, None] for c in extra[2]]
+            more += [_centred(c[keep], codes, n_strata) for c in extra[3]]
+            full = np.column_stack([v] + more)
+            plan = _mc.make_plan(full, tk, codes, n_strata)  # rows sorted by v first: same
+        sums = np.empty((full.shape[1], n_strata, resamples))
+        for lo, hi, part in _mc.iter_batches(plan, resamples, seed, batch_size, progress,
+                                             workers):
+            sums[:, :, lo:hi] = part
+        for key, j in zip(_column_keys(plan, full, seed, resamples), range(full.shape[1])):
+            cache.setdefault(key, sums[j])
+    elif progress is not None:
+        progress(resamples, resamples)
+    yield 0, resamples, np.stack([cache[key] for key in keys])
 
 
 def residualize(y, X, labels) -> np.ndarray:
@@ -111,18 +205,17 @@ def null_exposed_sums(values, t, labels, resamples, seed, batch_size=None, progr
     sorted labels; rows with label -1 ignored). Identical for every ``batch_size`` and
     ``workers``; memory: see :mod:`stratagap._engine_mc`.
     """
-    v, tk, codes, n_strata, _ = _clean(values, t, labels)
+    v, tk, codes, n_strata, keep = _clean(values, t, labels)
     resamples = _check_resamples(resamples)
-    plan = _mc.make_plan(v, tk, codes, n_strata)
     out = np.empty((v.shape[1], n_strata, resamples))
-    for lo, hi, sums in _mc.iter_batches(plan, resamples, check_seed(seed),
-                                         _check_batch(batch_size), progress, workers):
+    for lo, hi, sums in _batches(v, tk, codes, n_strata, resamples, check_seed(seed),
+                                 _check_batch(batch_size), progress, workers, (t, labels, keep)):
         out[:, :, lo:hi] = sums
     return out
 
 
 def _prepare(values, t, labels, estimand, statistic):
-    v, tk, codes, n_strata, _ = _clean(values, t, labels, columns_ok=False)
+    v, tk, codes, n_strata, keep = _clean(values, t, labels, columns_ok=False)
     n = np.bincount(codes, minlength=n_strata).astype(float)
     n1 = np.bincount(codes, weights=tk, minlength=n_strata)
     w = _weights(n, n1, estimand)
@@ -131,12 +224,10 @@ def _prepare(values, t, labels, estimand, statistic):
             raise InputError("`statistic` 'studentized' needs at least 2 exposed and 2 "
                              "reference units in every stratum; use 'mean_difference' or "
                              "merge strata")
-        mean_s = np.bincount(codes, weights=v[:, 0], minlength=n_strata) / n
-        c = v[:, 0] - mean_s[codes]  # centring within strata avoids cancellation in s^2
-        v = np.column_stack([c, c**2])
+        v = _centred(v[:, 0], codes, n_strata)
     totals = np.stack([np.bincount(codes, weights=v[:, j], minlength=n_strata)
                        for j in range(v.shape[1])])
-    return v, tk, codes, n_strata, _normal.Design(n, n1, w, totals, statistic)
+    return v, tk, codes, n_strata, _normal.Design(n, n1, w, totals, statistic), keep
 
 
 def _exposed_sums(v, tk, codes, n_strata):
@@ -152,7 +243,7 @@ def normal_moments(values, t, labels, estimand, statistic="mean_difference"):
     for ``"studentized"`` the asymptotic N(0, 1) moments ``(0, 1)``.
     """
     _check_choice(statistic, STATISTICS, "statistic")
-    v, _, codes, n_strata, design = _prepare(values, t, labels, estimand, statistic)
+    v, _, codes, n_strata, design, _ = _prepare(values, t, labels, estimand, statistic)
     return _normal.moments(v, codes, n_strata, design)
 
 
@@ -232,6 +323,7 @@ class PermutationResult:
     engine_reason: str
     null_distribution: np.ndarray = field(repr=False)
     null_weights: np.ndarray | None = field(default=None, repr=False)
+    engine_note: str = ""
 
     def to_dict(self) -> dict:
         d = {}
@@ -240,7 +332,7 @@ class PermutationResult:
                      "normal_mean", "normal_variance"):
             d[name] = _num(getattr(self, name))
         for name in ("engine", "null", "statistic_name", "alternative", "estimand",
-                     "engine_reason"):
+                     "engine_reason", "engine_note"):
             d[name] = str(getattr(self, name))
         d["resamples"] = int(self.resamples)
         d["seed"] = int(self.seed)
@@ -301,7 +393,7 @@ def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
     resamples = _check_resamples(resamples)
     seed = check_seed(seed)
     batch_size = _check_batch(batch_size)
-    v, tk, codes, n_strata, design = _prepare(values, t, labels, estimand, statistic)
+    v, tk, codes, n_strata, design, keep = _prepare(values, t, labels, estimand, statistic)
     observed = float(design.stat(_exposed_sums(v, tk, codes, n_strata)[:, :, None])[0])
     mean, var = _normal.moments(v, codes, n_strata, design)
     npg, npl = _normal.normal_p(observed, mean, var, statistic)
@@ -335,9 +427,9 @@ def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
         ge, le = _tail_p(null, observed)
         pg, pl = ge / null.size, le / null.size
     else:
-        plan = _mc.make_plan(v, tk, codes, n_strata)
         null = np.empty(resamples)
-        for lo, hi, sums in _mc.iter_batches(plan, resamples, seed, batch_size, progress, workers):
+        for lo, hi, sums in _batches(v, tk, codes, n_strata, resamples, seed, batch_size,
+                                     progress, workers, (t, labels, keep)):
             null[lo:hi] = design.stat(sums)
         ge, le = _tail_p(null, observed)
         pg, pl = (ge + 1) / (resamples + 1), (le + 1) / (resamples + 1)  # Phipson & Smyth 2010
@@ -353,7 +445,8 @@ def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
         normal_p_greater=npg, normal_p_less=npl, normal_mean=mean, normal_variance=var,
         statistic_name=statistic, alternative=alternative, estimand=estimand,
         batch_size=batch_size, exact=exact, engine_reason=reason,
-        null_distribution=null, null_weights=weights)
+        null_distribution=null, null_weights=weights,
+        engine_note="normal engine requested" if engine == "normal" else NORMAL_NOTE)
 
 
 def null_statistics(values, t, labels, *, estimand, resamples, seed, batch_size=None,
@@ -365,7 +458,7 @@ def null_statistics(values, t, labels, *, estimand, resamples, seed, batch_size=
     null equals :func:`stratified_test`'s Monte Carlo null for the same seed when column 0 has
     no ties within strata (rows are sorted by column 0, then the others).
     """
-    v, tk, codes, n_strata, _ = _clean(values, t, labels)
+    v, tk, codes, n_strata, keep = _clean(values, t, labels)
     resamples = _check_resamples(resamples)
     n = np.bincount(codes, minlength=n_strata).astype(float)
     n1 = np.bincount(codes, weights=tk, minlength=n_strata)
@@ -376,10 +469,9 @@ def null_statistics(values, t, labels, *, estimand, resamples, seed, batch_size=
                for j in range(v.shape[1])]
     obs_sums = _exposed_sums(v, tk, codes, n_strata)
     observed = np.array([d.stat(obs_sums[j:j + 1, :, None])[0] for j, d in enumerate(designs)])
-    plan = _mc.make_plan(v, tk, codes, n_strata)
     null = np.empty((v.shape[1], resamples))
-    for lo, hi, sums in _mc.iter_batches(plan, resamples, check_seed(seed),
-                                         _check_batch(batch_size), progress, workers):
+    for lo, hi, sums in _batches(v, tk, codes, n_strata, resamples, check_seed(seed),
+                                 _check_batch(batch_size), progress, workers, (t, labels, keep)):
         for j, d in enumerate(designs):
             null[j, lo:hi] = d.stat(sums[j:j + 1])
     return observed, null

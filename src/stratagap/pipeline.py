@@ -135,10 +135,12 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
                                                  alpha=spec.alpha, population=population)
     constant = None
     if not binary:
-        constant = _effects.constant_effect(y, t, X, labels, estimand=spec.estimand,
-                                            alpha=spec.alpha, resamples=spec.resamples,
-                                            seed=spec.seed, engine=spec.engine,
-                                            batch_size=spec.batch_size, population=population)
+        with tests.pop("draws"):  # the shuffles drawn for the tests serve the inversion too
+            constant = _effects.constant_effect(y, t, X, labels, estimand=spec.estimand,
+                                                alpha=spec.alpha, resamples=spec.resamples,
+                                                seed=spec.seed, engine=spec.engine,
+                                                batch_size=spec.batch_size,
+                                                population=population)
     mh = _effects.mantel_haenszel(y, t, labels, alpha=spec.alpha) if binary else None
     risk_ratio = None
     if binary:
@@ -176,7 +178,14 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
 
 
 def _tests(spec, y, t, X, labels, binary, progress) -> dict:
-    """The default test, its studentized companion and (binary outcomes) the MH sum test."""
+    """The default test, its studentized companion and (binary outcomes) the MH sum test.
+
+    Under one :class:`stratagap.permutation.shared_draws` the Monte Carlo engine draws the
+    shuffles once for the default statistic, its studentized companion and (continuous outcomes)
+    the residualized exposure of the constant-effect inversion; every result is bit-identical
+    to separate runs. For continuous outcomes ``out["draws"]`` carries that cache to the
+    ``constant_effect`` call, which pops it.
+    """
     common = dict(estimand=spec.estimand, alternative=spec.alternative, engine=spec.engine,
                   resamples=spec.resamples, seed=spec.seed, batch_size=spec.batch_size)
     if spec.statistic in ("adjusted", "studentized"):
@@ -185,19 +194,28 @@ def _tests(spec, y, t, X, labels, binary, progress) -> dict:
         values = y
     name = {"adjusted": "mean_difference", "difference": "mean_difference",
             "studentized": "studentized", "sum": "sum"}[spec.statistic]
-    main = _permutation.stratified_test(values, t, labels, statistic=name, progress=progress,
-                                        **common)
-    out = {"main": main, "values": values, "adjusted": spec.statistic in ("adjusted", "studentized")}
-    if spec.statistic == "adjusted":
-        counts = np.bincount(labels, weights=t), np.bincount(labels, weights=1 - t)
-        if min(counts[0].min(), counts[1].min()) >= 2:  # within-group variances need 2 units
+    counts = np.bincount(labels, weights=t), np.bincount(labels, weights=1 - t)
+    companion = spec.statistic == "adjusted" and min(counts[0].min(), counts[1].min()) >= 2
+    # columns drawn in the same pass as the main test's (the inversion's r_t = residualized t)
+    columns = [values] if binary else [values, _permutation.residualize(t.astype(float), X,
+                                                                         labels)]
+    draws = _permutation.shared_draws(t, labels, columns=columns,
+                                      studentized=[values] if companion else [])
+    with draws:
+        main = _permutation.stratified_test(values, t, labels, statistic=name,
+                                            progress=progress, **common)
+        out = {"main": main, "values": values,
+               "adjusted": spec.statistic in ("adjusted", "studentized")}
+        if companion:  # within-group variances need 2 units
             out["studentized"] = _permutation.stratified_test(values, t, labels,
                                                               statistic="studentized", **common)
-        else:
+        elif spec.statistic == "adjusted":
             warnings.warn("The studentized (weak-null) companion test was not run: some strata "
                           "hold fewer than 2 units of a group (e.g. matched pairs).", StrataWarning)
     if binary and spec.statistic != "sum":
         out["sum"] = _permutation.stratified_test(y, t, labels, statistic="sum", **common)
+    if not binary:
+        out["draws"] = draws
     return out
 
 
