@@ -48,7 +48,7 @@ from scipy import stats
 
 from ._aipw import aipw_fit, standardize_fit
 from ._errors import InputError
-from ._ipw import MAX_SHARE_FLAG, fit_score, flag_weights, ipw_fit, weight_summary
+from ._ipw import MAX_SHARE_FLAG, _weight_parts, fit_score, flag_weights, ipw_fit, weight_summary
 
 __all__ = [
     "cross_checks",
@@ -353,6 +353,22 @@ def _ipw_row(fit, measure, alpha, estimand, label, truncate):
                 se_method=se_method, notes=notes, details={"se_known_score": known})
 
 
+def _censoring_row(y, t, e, cw, measure, alpha, estimand, label):
+    """Hájek IPW with each unit's weight multiplied by its inverse probability of an observed
+    outcome (Hernán & Robins, What If, §12.6). The SE is the sandwich for the two weighted means
+    with both sets of weights treated as known (the What If practice, from memory)."""
+    w1, w0, _, _ = _weight_parts(e, t, estimand)
+    mu, psi = np.empty(2), np.empty((len(y), 2))
+    for j, w in enumerate((w1 * cw, w0 * cw)):
+        mu[j] = np.sum(w * y) / np.sum(w)
+        psi[:, j] = w * (y - mu[j]) / np.mean(w)  # influence of a Hájek mean, weights fixed
+    fit = {"mu": mu, "cov": psi.T @ psi / len(y) ** 2}
+    return _row("IPW x censoring weights (Hájek)", fit, measure=measure, alpha=alpha,
+                estimand=estimand, label=label,
+                se_method="sandwich treating the exposure and censoring weights as known",
+                notes=["complete cases weighted by 1 / P(outcome observed | covariates, exposure)"])
+
+
 def _diagnostics(fit, t, estimand, truncate):
     raw = weight_summary(fit["raw_weights"], t)
     flag_weights(raw)
@@ -446,7 +462,8 @@ def standardize(y, t, X, *, estimand, outcome_type, alpha=0.05, measure="differe
 
 @_one_blas_thread
 def cross_checks(y, t, X, *, estimand, alpha=0.05, outcome_type, measure="difference",
-                 truncate=None, score=None, interactions="all", estimand_label=None):
+                 truncate=None, score=None, interactions="all", estimand_label=None,
+                 censoring_weights=None):
     """Run IPW, AIPW and standardization on the same sample and estimand.
 
     Parameters
@@ -466,6 +483,9 @@ def cross_checks(y, t, X, *, estimand, alpha=0.05, outcome_type, measure="differ
         when the refit separates.
     interactions : passed to :func:`standardize`.
     estimand_label : str, optional
+    censoring_weights : array or None
+        Inverse probabilities of an observed outcome for these rows
+        (:func:`stratagap.data.observed_weights`); when given, one more IPW row uses them.
 
     Returns
     -------
@@ -490,6 +510,11 @@ def cross_checks(y, t, X, *, estimand, alpha=0.05, outcome_type, measure="differ
         tfit = ipw_fit(y, t, sfit, estimand, truncate=truncate)
         rows.append(_ipw_row(tfit, measure, alpha, estimand, label, truncate))
         diag_fit = tfit
+    if censoring_weights is not None:
+        cw = np.asarray(censoring_weights, dtype=float)
+        if cw.shape != y.shape or not np.all(np.isfinite(cw) & (cw > 0)):
+            raise InputError("`censoring_weights` must be positive, finite and one per row")
+        rows.append(_censoring_row(y, t, fit["score"], cw, measure, alpha, estimand, label))
     rows.append(_aipw_row(y, t, X, fit["score"], estimand, outcome_type, measure, alpha, label))
     rows.append(standardize(y, t, X, estimand=estimand, outcome_type=outcome_type, alpha=alpha,
                             measure=measure, interactions=interactions, estimand_label=label))

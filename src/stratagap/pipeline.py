@@ -25,7 +25,7 @@ from . import permutation as _permutation
 from . import scores as _scores
 from . import sensitivity as _sensitivity
 from . import strata as _strata
-from ._errors import InputError, StrataWarning, StratagapWarning
+from ._errors import InputError, MissingDataWarning, StrataWarning, StratagapWarning
 from .result import AnalysisResult, CAUTIONS, versions
 from .spec import AnalysisSpec
 from .verdict import write_verdict
@@ -152,7 +152,13 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
     cross = _crosscheck.cross_checks(y, t, X, estimand=spec.estimand, alpha=spec.alpha,
                                      outcome_type=prepared.outcome_type,
                                      truncate=spec.truncate_weights,
-                                     score=propensity.score[used], estimand_label=population)
+                                     score=propensity.score[used], estimand_label=population,
+                                     censoring_weights=None if prepared.censoring_weights is None
+                                     else prepared.censoring_weights[used])
+    if prepared.censoring_weights is not None:
+        warnings.warn("Censoring weights enter the cross-check row 'IPW x censoring weights'; the "
+                      "stratified headline and the permutation test use the complete cases "
+                      "unweighted.", MissingDataWarning)
     heterogeneity = _heterogeneity_block(adjusted.per_stratum, y, t, labels, binary)
 
     sensitivity = _sensitivity_block(spec, prepared, tests, adjusted, risk_ratio, y, t, X, labels,
