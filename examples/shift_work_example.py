@@ -10,13 +10,13 @@ import numpy as np
 import stratagap
 from stratagap.demo import make_shift_work_data, true_effects
 
-data = make_shift_work_data(n=3000, seed=7)
+data = make_shift_work_data(n=3000, seed=2026)
 public = data.drop(columns=["_true_effect"])  # an analysis never sees the individual effects
 
 for estimand in ("ate", "att"):
     result = stratagap.analyze(public, exposure="shift", exposed_value="nights",
                                outcome="systolic_bp", covariates=["age", "bmi", "smoker", "role"],
-                               estimand=estimand, resamples=2000, seed=7)
+                               estimand=estimand, resamples=2000, seed=2026)
     ids = public["staff_id"].to_numpy()[result.arrays["row_ids"][result.arrays["used"]]]
     truth = true_effects(data, ids)[estimand]
     adj = result.adjusted

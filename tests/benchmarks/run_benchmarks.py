@@ -1,0 +1,389 @@
+"""Benchmarks of the stratified permutation engine and of a whole analysis, measured in one run.
+
+    python tests/benchmarks/run_benchmarks.py                          # full (about 5-10 min)
+    python tests/benchmarks/run_benchmarks.py --write docs/performance.md
+    python tests/benchmarks/run_benchmarks.py --quick                  # smoke size (seconds)
+
+Prints, all measured in the same run on the same data:
+
+* our engine (Monte Carlo, B resamples) for n = 10k, 100k, 1M rows, 5 and 50 strata, a
+  continuous outcome (``mean_difference``) and a binary outcome (``sum``: hypergeometric draws;
+  and the default covariance-adjusted statistic, whose residuals are continuous): wall time, CPU
+  time of the process (with 2 free cores and the compiled kernels, wall ~ CPU / 2), and the
+  tracemalloc peak above the interpreter's baseline (numpy's allocations are traced);
+* baseline 1: ``scipy.stats.permutation_test`` (independent samples, vectorized difference of
+  means) on ONE stratum of all n = 1M rows, the only case it covers, against our engine on the
+  same single stratum;
+* baseline 2: a Python loop shuffling the label column of a pandas DataFrame within each of 5
+  strata (``sample(frac=1)``) and recomputing grouped means, against our engine on the same data;
+  baselines run ``--baseline-resamples`` resamples and are compared per resample;
+* the whole ``stratagap.analyze`` on 100k rows x 20 covariates with B resamples (in a child
+  process: wall time, time per stage, and peak resident memory above the child's baseline,
+  against the size of the input table).
+
+Not a test: no assertions (``tests/test_benchmarks_smoke.py`` runs ``--quick`` in the suite).
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as _dt
+import json
+import os
+import platform
+import resource
+import subprocess
+import sys
+import time
+import tracemalloc
+
+import numpy as np
+import pandas as pd
+import scipy
+from scipy import stats
+
+from stratagap import _engine_jit
+from stratagap import permutation as P
+
+TARGETS = {"continuous_1m_5": 10.0, "binary_sum_1m_5": 1.0, "analyze_s": 15.0,
+           "analyze_memory_ratio": 5.0, "ratio": 100.0}
+
+
+# ----------------------------------------------------------------------------- machine
+def machine() -> dict:
+    model = platform.processor() or platform.machine()
+    try:
+        with open("/proc/cpuinfo") as fh:
+            for line in fh:
+                if line.lower().startswith("model name"):
+                    model = line.split(":", 1)[1].strip()
+                    break
+    except OSError:
+        pass
+    try:
+        import numba
+        numba_version = numba.__version__
+    except ImportError:
+        numba_version = None
+    return {"cpu": model, "cores": os.cpu_count(), "load_1min": round(os.getloadavg()[0], 2),
+            "python": platform.python_version(), "numpy": np.__version__,
+            "scipy": scipy.__version__, "pandas": pd.__version__, "numba": numba_version,
+            "compiled_kernels": _engine_jit.jit_available(),
+            "date": _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")}
+
+
+# ----------------------------------------------------------------------------- data
+def engine_data(n, n_strata, seed=0):
+    rng = np.random.default_rng(seed)
+    labels = rng.integers(0, n_strata, n)
+    t = (rng.random(n) < 0.3).astype(np.int8)
+    y = rng.normal(size=n) + 0.01 * t
+    yb = (rng.random(n) < 0.1 + 0.002 * t).astype(float)
+    return y, yb, t, labels
+
+
+def analysis_table(n, p, seed=0):
+    """Confounded invented data: p covariates (3/4 normal, 1/4 0/1), continuous outcome."""
+    rng = np.random.default_rng(seed)
+    n_bin = p // 4
+    X = np.column_stack([rng.normal(size=(n, p - n_bin)),
+                         (rng.random((n, n_bin)) < 0.4).astype(float)])
+    q = min(6, p)  # the confounders
+    lin = X[:, :q] @ np.full(q, 0.25) - 0.5
+    t = (rng.random(n) < 1 / (1 + np.exp(-lin))).astype(int)
+    y = X[:, :q] @ np.full(q, 0.5) + 0.3 * t + rng.normal(size=n)
+    frame = pd.DataFrame(X, columns=[f"x{j:02d}" for j in range(p)])
+    frame["exposed"] = t
+    frame["outcome"] = y
+    return frame
+
+
+# ----------------------------------------------------------------------------- timing
+def timed(fn):
+    """(result, wall s, CPU s, tracemalloc peak bytes above the start)."""
+    tracemalloc.start()
+    base = tracemalloc.get_traced_memory()[0]
+    w0, c0 = time.perf_counter(), time.process_time()
+    out = fn()
+    wall, cpu = time.perf_counter() - w0, time.process_time() - c0
+    peak = tracemalloc.get_traced_memory()[1] - base
+    tracemalloc.stop()
+    return out, wall, cpu, peak
+
+
+def pandas_loop(y, t, labels, resamples, seed):
+    """Baseline 2: shuffle the label column within strata with pandas, recompute means."""
+    frame = pd.DataFrame({"y": y, "t": t, "s": labels})
+    rng = np.random.default_rng(seed)
+    out = np.empty(resamples)
+    weights = frame.groupby("s").size() / len(frame)
+    for b in range(resamples):
+        parts = [g.assign(t=g["t"].sample(frac=1, random_state=rng).to_numpy())
+                 for _, g in frame.groupby("s")]
+        means = pd.concat(parts).groupby(["s", "t"])["y"].mean().unstack()
+        out[b] = float(((means[1] - means[0]) * weights).sum())
+    return out
+
+
+def scipy_baseline(y, t, resamples):
+    """Baseline 1: scipy.stats.permutation_test, independent samples, vectorized statistic."""
+    def diff(x, z, axis):
+        return np.mean(x, axis=axis) - np.mean(z, axis=axis)
+    return stats.permutation_test((y[t == 1], y[t == 0]), diff, permutation_type="independent",
+                                  vectorized=True, n_resamples=resamples,
+                                  random_state=np.random.default_rng(1))
+
+
+def engine_rows(sizes, strata, B, workers):
+    rows = []
+    warm = engine_data(5000, 5)  # compile the kernels (cached on disk after the first run)
+    P.stratified_test(warm[0], warm[2], warm[3], estimand="ate", engine="monte_carlo",
+                      resamples=300, seed=0)
+    for n in sizes:
+        for S in strata:
+            y, yb, t, labels = engine_data(n, S)
+            kw = dict(estimand="ate", engine="monte_carlo", resamples=B, seed=1,
+                      workers=workers)
+            cases = [("continuous", "mean_difference", y), ("binary", "sum", yb)]
+            if n == max(sizes):  # default statistic on a binary outcome: residuals
+                cases.append(("binary, adjusted", "mean_difference", yb - yb.mean()))
+            for kind, stat, values in cases:
+                res, wall, cpu, peak = timed(lambda: P.stratified_test(
+                    values, t, labels, statistic=stat, **kw))
+                rows.append(dict(n=n, strata=S, outcome=kind, statistic=stat, resamples=B,
+                                 wall_s=wall, cpu_s=cpu, ms_per_resample=wall / B * 1e3,
+                                 peak_mib=peak / 2**20, p_value=res.p_value))
+                print(f"  n={n:>9,} S={S:>3} {kind:<17} {stat:<15} wall {wall:7.2f} s  "
+                      f"cpu {cpu:7.2f} s  {wall / B * 1e3:7.3f} ms/resample  "
+                      f"peak {peak / 2**20:7.1f} MiB", flush=True)
+    return rows
+
+
+def baselines(n, B, Bb, workers):
+    y, _, t, labels = engine_data(n, 5)
+    one = np.zeros(n, dtype=np.int64)
+    kw = dict(estimand="ate", engine="monte_carlo", resamples=B, seed=1, workers=workers)
+    _, ours1, _, _ = timed(lambda: P.stratified_test(y, t, one, **kw))
+    _, sc, _, _ = timed(lambda: scipy_baseline(y, t, Bb))
+    _, ours5, _, _ = timed(lambda: P.stratified_test(y, t, labels, **kw))
+    _, pl, _, _ = timed(lambda: pandas_loop(y, t, labels, Bb, 1))
+    out = {"n": n, "resamples": B, "baseline_resamples": Bb,
+           "ours_one_stratum_ms": ours1 / B * 1e3, "scipy_ms": sc / Bb * 1e3,
+           "ours_5_strata_ms": ours5 / B * 1e3, "pandas_loop_ms": pl / Bb * 1e3}
+    out["ratio_scipy"] = out["scipy_ms"] / out["ours_one_stratum_ms"]
+    out["ratio_pandas"] = out["pandas_loop_ms"] / out["ours_5_strata_ms"]
+    print(f"  one stratum, n={n:,}: ours {out['ours_one_stratum_ms']:.3f} ms/resample, "
+          f"scipy.stats.permutation_test {out['scipy_ms']:.1f} ms/resample: "
+          f"ratio {out['ratio_scipy']:.0f}x")
+    print(f"  5 strata, n={n:,}: ours {out['ours_5_strata_ms']:.3f} ms/resample, pandas "
+          f"shuffle loop {out['pandas_loop_ms']:.1f} ms/resample: ratio "
+          f"{out['ratio_pandas']:.0f}x", flush=True)
+    return out
+
+
+# ----------------------------------------------------------------------------- analyze
+def analyze_child(n, p, B):
+    """Run in a child process: one analysis, stage times and peak RSS above the baseline."""
+    import stratagap
+    from stratagap import pipeline
+
+    frame = analysis_table(n, p)
+    table_bytes = int(frame.memory_usage(deep=True).sum())
+    stages = {}
+    for mod_name, fn_name in [("_data", "prepare"), ("_scores", "fit_propensity"),
+                              ("_overlap", "apply_overlap"), ("_strata", "make_strata"),
+                              ("_balance", "balance_table"), ("_effects", "stratified_regression"),
+                              ("_effects", "constant_effect"), ("_crosscheck", "cross_checks")]:
+        mod = getattr(pipeline, mod_name)
+        original = getattr(mod, fn_name)
+
+        def wrapped(*a, _f=original, _k=f"{mod_name[1:]}.{fn_name}", **kw):
+            t0 = time.perf_counter()
+            try:
+                return _f(*a, **kw)
+            finally:
+                stages[_k] = stages.get(_k, 0.0) + time.perf_counter() - t0
+        setattr(mod, fn_name, wrapped)
+    for fn_name in ("_tests", "_sensitivity_block"):
+        original = getattr(pipeline, fn_name)
+
+        def wrapped(*a, _f=original, _k=fn_name.strip("_"), **kw):
+            t0 = time.perf_counter()
+            try:
+                return _f(*a, **kw)
+            finally:
+                stages[_k] = stages.get(_k, 0.0) + time.perf_counter() - t0
+        setattr(pipeline, fn_name, wrapped)
+    base_kib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    t0 = time.perf_counter()
+    res = stratagap.analyze(frame, exposure="exposed", outcome="outcome",
+                            covariates=[c for c in frame.columns if c.startswith("x")],
+                            resamples=B, seed=1)
+    wall = time.perf_counter() - t0
+    peak_kib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    d = res.to_dict()
+    print(json.dumps({"n": n, "p": p, "resamples": B, "wall_s": wall, "stages": stages,
+                      "table_mib": table_bytes / 2**20,
+                      "peak_above_baseline_mib": (peak_kib - base_kib) / 1024,
+                      "p_value": d["test"]["p_value"]}))
+
+
+def analyze_run(n, p, B):
+    cmd = [sys.executable, os.path.abspath(__file__), "--analyze-child", str(n), str(p), str(B)]
+    out = subprocess.run(cmd, capture_output=True, text=True)
+    if out.returncode:
+        raise RuntimeError(f"analysis child failed:\n{out.stderr[-3000:]}")
+    row = json.loads(out.stdout.strip().splitlines()[-1])
+    row["memory_ratio"] = row["peak_above_baseline_mib"] / row["table_mib"]
+    print(f"  analyze {n:,} rows x {p} covariates, B={B:,}: {row['wall_s']:.1f} s; peak RSS "
+          f"+{row['peak_above_baseline_mib']:.0f} MiB = {row['memory_ratio']:.1f}x the "
+          f"{row['table_mib']:.1f} MiB table")
+    for k, v in sorted(row["stages"].items(), key=lambda kv: -kv[1]):
+        print(f"      {k:<32} {v:6.2f} s")
+    return row
+
+
+# ----------------------------------------------------------------------------- report
+def markdown(info, rows, base, an, args) -> str:
+    ok = lambda flag: "met" if flag else "NOT met"  # noqa: E731
+    big = max(r["n"] for r in rows)
+    cont = next((r for r in rows if r["n"] == big and r["strata"] == 5
+                 and r["outcome"] == "continuous"), None)
+    bsum = next((r for r in rows if r["n"] == big and r["strata"] == 5
+                 and r["outcome"] == "binary"), None)
+    L = ["# Performance", "",
+         "Generated by `python tests/benchmarks/run_benchmarks.py --write docs/performance.md`"
+         " (every number below comes from one run of that command; rerun it to reproduce).",
+         "", "## Machine", "",
+         f"- CPU: {info['cpu']}, {info['cores']} cores; load average (1 min) at the start "
+         f"{info['load_1min']} (other work on the machine slows every figure, most of all "
+         "the 2-thread ones)",
+         f"- Python {info['python']}, numpy {info['numpy']}, scipy {info['scipy']}, pandas "
+         f"{info['pandas']}, numba {info['numba']}; compiled kernels "
+         f"{'on' if info['compiled_kernels'] else 'off (STRATAGAP_NO_JIT or no numba)'}",
+         f"- Date: {info['date']}; engine threads: "
+         f"{args.workers if args.workers else 'default (every core with compiled kernels)'}",
+         "", "## Targets (issue 6, 2 cores)", "",
+         "| target | goal | measured | status |", "| --- | --- | --- | --- |"]
+    if cont:
+        L.append(f"| continuous, n = {big:,}, 5 strata, {cont['resamples']:,} resamples | "
+                 f"<= 10 s | {cont['wall_s']:.1f} s wall ({cont['cpu_s']:.1f} s CPU) | "
+                 f"{ok(cont['wall_s'] <= 10)} |")
+    if bsum:
+        L.append(f"| binary sum, same size | <= 1 s | {bsum['wall_s']:.2f} s | "
+                 f"{ok(bsum['wall_s'] <= 1)} |")
+    if base:
+        L.append(f"| vs scipy.stats.permutation_test, one stratum, n = {base['n']:,} | >= 100x"
+                 f" | {base['ratio_scipy']:.0f}x | {ok(base['ratio_scipy'] >= 100)} |")
+        L.append(f"| vs pandas shuffle loop, 5 strata, n = {base['n']:,} | >= 100x | "
+                 f"{base['ratio_pandas']:.0f}x | {ok(base['ratio_pandas'] >= 100)} |")
+    if an:
+        L.append(f"| analyze, {an['n']:,} rows x {an['p']} covariates, {an['resamples']:,} "
+                 f"resamples | <= 15 s | {an['wall_s']:.1f} s | {ok(an['wall_s'] <= 15)} |")
+        L.append(f"| analyze peak memory | <= 5x the input table ({an['table_mib']:.1f} MiB) | "
+                 f"+{an['peak_above_baseline_mib']:.0f} MiB ({an['memory_ratio']:.1f}x) | "
+                 f"{ok(an['memory_ratio'] <= 5)} |")
+    L += ["", "## Engine: absolute times", "",
+          "Monte Carlo engine, exposed share 0.3, estimand ATE; wall and process CPU time; peak"
+          " = tracemalloc peak above the start of the call (numpy's buffers are traced).", "",
+          "| n | strata | outcome | statistic | resamples | wall s | CPU s | ms/resample | "
+          "peak MiB |", "| ---: | ---: | --- | --- | ---: | ---: | ---: | ---: | ---: |"]
+    for r in rows:
+        L.append(f"| {r['n']:,} | {r['strata']} | {r['outcome']} | {r['statistic']} | "
+                 f"{r['resamples']:,} | {r['wall_s']:.2f} | {r['cpu_s']:.2f} | "
+                 f"{r['ms_per_resample']:.3f} | {r['peak_mib']:.1f} |")
+    if base:
+        L += ["", "## Against the baselines (same run, same data)", "",
+              f"Baselines ran {base['baseline_resamples']} resamples, our engine "
+              f"{base['resamples']:,}; compared per resample.", "",
+              "| case | ours ms/resample | baseline ms/resample | ratio |",
+              "| --- | ---: | ---: | ---: |",
+              f"| one stratum, n = {base['n']:,}: scipy.stats.permutation_test | "
+              f"{base['ours_one_stratum_ms']:.3f} | {base['scipy_ms']:.1f} | "
+              f"{base['ratio_scipy']:.0f}x |",
+              f"| 5 strata, n = {base['n']:,}: pandas `sample(frac=1)` loop | "
+              f"{base['ours_5_strata_ms']:.3f} | {base['pandas_loop_ms']:.1f} | "
+              f"{base['ratio_pandas']:.0f}x |"]
+    if an:
+        L += ["", "## Whole analysis", "",
+              f"`stratagap.analyze` on {an['n']:,} invented rows x {an['p']} covariates, "
+              f"continuous outcome, {an['resamples']:,} resamples, in a child process: "
+              f"{an['wall_s']:.1f} s; peak resident memory {an['peak_above_baseline_mib']:.0f}"
+              f" MiB above the child's baseline (after building the table), "
+              f"{an['memory_ratio']:.1f}x the {an['table_mib']:.1f} MiB input table.", "",
+              "| stage | s |", "| --- | ---: |"]
+        for k, v in sorted(an["stages"].items(), key=lambda kv: -kv[1]):
+            L.append(f"| {k} | {v:.2f} |")
+    L += ["", "## How the engine gets there", "", NOTES]
+    return "\n".join(L) + "\n"
+
+
+NOTES = """\
+- Only the smaller group of each stratum is drawn; the exposed sum is that draw's sum or the
+  stratum total minus it.
+- Random-byte threshold draw: one random byte per unit and resample (numpy's
+  `random_raw`, about 0.5 ns per unit: the largest single cost left); the byte value at which
+  the count first reaches the group size; the few units at that byte are picked by 64-bit keys.
+  Exactly uniform subsets, no sort.
+- Compiled kernels (numba, `nogil`) for the count, the selection and the sums: about 1.5 ns per
+  unit and resample in all, against about 6 ns for the numpy version (the numpy version remains
+  as the fallback: `STRATAGAP_NO_JIT=1` or numba missing). Both add in one fixed order (8 lanes)
+  so they give bit-identical results; `tests/test_engine_jit.py` checks that.
+- Threads draw whole blocks of 250 resamples (streams keyed by block), so results do not depend
+  on the number of threads or the batch size; with the compiled kernels every core is used by
+  default.
+- Binary outcome with the sum statistic: one hypergeometric draw per stratum and resample (and
+  the exact convolution, chosen automatically).
+- Small strata (matched sets, at most 64 units): all shuffled together by one sort of random keys.
+- `analyze` draws the shuffles once for the default test, its studentized companion and the
+  constant-effect inversion (`permutation.shared_draws`): bit-identical to separate runs.
+- Progress: default batches hold at most about 0.5 s of drawing (one block at n = 1M), so the
+  progress callback is called at least every ~0.5-1 s on long runs.
+- Normal engine: never chosen automatically (see `engine_note` on every test result); its
+  p-value is reported beside the Monte Carlo one.
+"""
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="smoke size: seconds")
+    ap.add_argument("--resamples", type=int, default=10_000)
+    ap.add_argument("--baseline-resamples", type=int, default=100)
+    ap.add_argument("--workers", type=int, default=None)
+    ap.add_argument("--write", metavar="PATH", help="write the markdown table to PATH")
+    ap.add_argument("--skip-analyze", action="store_true")
+    ap.add_argument("--analyze-child", nargs=3, type=int, help=argparse.SUPPRESS)
+    a = ap.parse_args(argv)
+    if a.analyze_child:
+        analyze_child(*a.analyze_child)
+        return 0
+    if a.quick:
+        sizes, strata, B, Bb, big, an_size = [10_000], [5], 300, 3, 20_000, (3000, 5, 300)
+    else:
+        sizes, strata, B, Bb = [10_000, 100_000, 1_000_000], [5, 50], a.resamples, \
+            a.baseline_resamples
+        big, an_size = 1_000_000, (100_000, 20, a.resamples)
+    info = machine()
+    print(f"machine: {info['cpu']}, {info['cores']} cores, load {info['load_1min']}; numpy "
+          f"{info['numpy']}, scipy {info['scipy']}, numba {info['numba']}, compiled kernels "
+          f"{info['compiled_kernels']}", flush=True)
+    print("engine:")
+    rows = engine_rows(sizes, strata, B, a.workers)
+    print("baselines:")
+    base = baselines(big, B, Bb, a.workers)
+    an = None
+    if not a.skip_analyze:
+        print("whole analysis:")
+        an = analyze_run(*an_size)
+    if a.write:
+        text = markdown(info, rows, base, an, a)
+        tmp = a.write + ".tmp"
+        with open(tmp, "w") as fh:
+            fh.write(text)
+        os.replace(tmp, a.write)  # atomic
+        print(f"wrote {a.write}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
