@@ -14,24 +14,11 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 
 from ._errors import InputError
+from ._jsonable import jsonable
 
 #: Matched-set rule: every stratum has one unit in a group and at most this many units.
 MATCHED_SET_MAX = 10
 
-
-def _json(value):
-    """JSON-ready builtins (NaN/inf -> None, numpy -> Python)."""
-    if isinstance(value, dict):
-        return {str(k): _json(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_json(v) for v in value]
-    if isinstance(value, (bool, np.bool_)):
-        return bool(value)
-    if isinstance(value, (int, np.integer)):
-        return int(value)
-    if isinstance(value, (float, np.floating)):
-        return float(value) if math.isfinite(value) else None
-    return value
 
 
 @dataclass(frozen=True)
@@ -54,7 +41,7 @@ class Estimate:
     scale: str = "identity"
 
     def to_dict(self) -> dict:
-        return _json(asdict(self))
+        return jsonable(asdict(self))
 
 
 @dataclass(frozen=True)

@@ -13,6 +13,7 @@ from dataclasses import asdict, dataclass
 from scipy import stats
 
 from ._errors import InputError
+from ._jsonable import jsonable as _jsonable
 
 __all__ = ["EValue", "e_value", "RARE_OUTCOME_THRESHOLD"]
 
@@ -29,22 +30,6 @@ _MEASURES = {
     "difference": "difference", "mean_difference": "difference",
 }
 
-
-def _jsonable(value):
-    """Builtin, JSON-ready copy of ``value`` (NaN/inf become None, numpy scalars become floats)."""
-    if isinstance(value, dict):
-        return {str(k): _jsonable(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [_jsonable(v) for v in value]
-    if isinstance(value, bool) or value is None or isinstance(value, str):
-        return value
-    if hasattr(value, "item") and not isinstance(value, (list, tuple)):
-        value = value.item()
-    if isinstance(value, int):
-        return value
-    if isinstance(value, float):
-        return value if math.isfinite(value) else None
-    return value
 
 
 @dataclass(frozen=True)

@@ -48,6 +48,7 @@ from scipy import stats
 
 from ._errors import InputError, ModelWarning
 from ._rng import check_seed
+from ._jsonable import jsonable
 
 #: Grid points used to locate the accepted set before bisection.
 GRID = 801
@@ -86,17 +87,7 @@ class ConstantEffect:
     curve_p: list = field(default_factory=list)
 
     def to_dict(self) -> dict:
-        def clean(v):
-            if isinstance(v, list):
-                return [clean(x) for x in v]
-            if isinstance(v, (bool, np.bool_)):
-                return bool(v)
-            if isinstance(v, (int, np.integer)):
-                return int(v)
-            if isinstance(v, (float, np.floating)):
-                return float(v) if math.isfinite(v) else None
-            return v
-        return {k: clean(v) for k, v in asdict(self).items()}
+        return jsonable(asdict(self))
 
 
 # --------------------------------------------------------------------------- statistic

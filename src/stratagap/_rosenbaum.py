@@ -30,7 +30,7 @@ import numpy as np
 from scipy import optimize
 
 from ._errors import InputError
-from ._evalue import _jsonable
+from ._jsonable import jsonable as _jsonable
 from ._nchyper import _cut_moments, _normal_sf, _perm_moments
 from ._rosenbaum_binary import _binary_exact_p, _binary_normal_p, _binary_setup, _convolution_cost
 

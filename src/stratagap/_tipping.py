@@ -16,7 +16,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._errors import InputError, ModelWarning
-from ._evalue import _jsonable
+from ._jsonable import jsonable as _jsonable
 
 __all__ = ["TippingGrid", "tipping_grid", "covariate_benchmarks", "BENCHMARK_CAVEAT"]
 

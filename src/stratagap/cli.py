@@ -141,7 +141,6 @@ def _run_analyze(args) -> int:
     from .data import read_table
     from .output import prepare_folder, write_result
     from .pipeline import analyze
-    from .summary import render_summary
 
     _check_format(args.format)
     options = _spec_options(args)
@@ -169,7 +168,6 @@ def _run_demo(args) -> int:
     from .demo import DEMO_COVARIATES, make_shift_work_data, true_effects
     from .output import prepare_folder, write_atomic, write_result
     from .pipeline import analyze
-    from .summary import render_summary
     from .spec import AnalysisSpec
 
     _check_format(args.format)

@@ -49,6 +49,7 @@ from scipy import stats
 from ._aipw import aipw_fit, standardize_fit
 from ._errors import InputError
 from ._ipw import MAX_SHARE_FLAG, _weight_parts, fit_score, flag_weights, ipw_fit, weight_summary
+from ._jsonable import jsonable
 
 __all__ = [
     "cross_checks",
@@ -91,19 +92,6 @@ def _num(x):
     return x if math.isfinite(x) else None
 
 
-def _clean(obj):
-    if isinstance(obj, dict):
-        return {str(k): _clean(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_clean(v) for v in obj]
-    if isinstance(obj, (bool, np.bool_)):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        return _num(obj)
-    return obj
-
 
 @dataclass(frozen=True)
 class CrossCheckRow:
@@ -131,7 +119,7 @@ class CrossCheckRow:
     details: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
-        return _clean(asdict(self))
+        return jsonable(asdict(self))
 
 
 @dataclass(frozen=True)
@@ -156,7 +144,7 @@ class WeightDiagnostics:
     share_flag: float
 
     def to_dict(self) -> dict:
-        return _clean(asdict(self))
+        return jsonable(asdict(self))
 
 
 @dataclass(frozen=True)

@@ -358,7 +358,7 @@ def main(argv=None):
         analyze_child(*a.analyze_child)
         return 0
     if a.quick:
-        sizes, strata, B, Bb, big, an_size = [10_000], [5], 300, 3, 20_000, (3000, 5, 300)
+        sizes, strata, B, Bb, big, an_size = [5000], [5], 250, 2, 5000, (1500, 4, 200)
     else:
         sizes, strata, B, Bb = [10_000, 100_000, 1_000_000], [5, 50], a.resamples, \
             a.baseline_resamples

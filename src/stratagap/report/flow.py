@@ -35,7 +35,7 @@ def flow_steps(flow: dict) -> list[dict]:
     missing_exit = None
     if read is not None and used is not None:
         by_col = {k: int(v) for k, v in (flow.get("dropped_missing_by_column") or {}).items() if v}
-        lines = [f"by column: " + ", ".join(f"{k} {v:,}" for k, v in by_col.items())] if by_col else []
+        lines = ["by column: " + ", ".join(f"{k} {v:,}" for k, v in by_col.items())] if by_col else []
         if len(by_col) > 1:
             lines.append("(a row can miss several columns)")
         by_group = _groups(flow.get("dropped_missing_by_group"))
