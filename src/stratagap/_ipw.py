@@ -50,7 +50,10 @@ def full_rank_columns(Z: np.ndarray, tol: float = 1e-9) -> np.ndarray:
         return np.arange(0)
     r = np.linalg.qr(Z, mode="r")
     norms = np.linalg.norm(Z, axis=0)
-    return np.flatnonzero(np.abs(np.diag(r)) > tol * np.maximum(norms, 1e-300))
+    diag = np.zeros(Z.shape[1])  # a wide Z: columns beyond the number of rows are dependent
+    k = min(Z.shape)
+    diag[:k] = np.abs(np.diag(r))[:k]
+    return np.flatnonzero(diag > tol * np.maximum(norms, 1e-300))
 
 
 def fit_logistic(Z: np.ndarray, t: np.ndarray, what: str) -> tuple[np.ndarray, np.ndarray, bool]:

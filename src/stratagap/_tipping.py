@@ -222,8 +222,9 @@ def covariate_benchmarks(terms, X, y, t, *, measure="difference", top=5) -> dict
         raise InputError(f"`top` must be a positive integer, got {top!r}")
     ref = t == 0
     if ref.sum() <= X.shape[1] + 1:
-        raise InputError(f"`t`: the reference group has {int(ref.sum())} rows, too few to regress y on "
-                         f"{X.shape[1]} covariates for the benchmarks")
+        warnings.warn(f"Sensitivity benchmarks skipped: the reference group has {int(ref.sum())} rows, "
+                      f"too few to regress the outcome on {X.shape[1]} covariates.", ModelWarning)
+        return {}
     out = []
     for term in terms:
         j = term.column
