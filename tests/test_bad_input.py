@@ -160,7 +160,8 @@ def test_undecodable_encoding_is_a_clean_error(tmp_path, frame, capsys):
 def test_the_advised_encoding_flag_reads_the_file(tmp_path, frame, capsys):
     # The error above advises --encoding; following the advice must work.
     path = _latin1_csv(tmp_path, frame)
-    argv = [a for a in cli_args(path, "--encoding", "latin-1", "--format", "json") if a != "--quiet"]
+    argv = [a for a in cli_args(path, "--encoding", "latin-1", "--format", "json")
+            if a != "--quiet"]
     assert main(argv) == 0, capsys.readouterr().err
     levels = {row["level"] for row in json.loads(capsys.readouterr().out)["balance"]["rows"]}
     assert "portéur" in levels
@@ -368,6 +369,49 @@ def test_one_stratum_is_allowed(frame):
     # secondary diagnostics that need two strata must step aside, not fail the analysis.
     d = run(frame, n_strata=1).to_dict()
     assert len(d["strata"]) == 1 and 0 < d["test"]["p_value"] <= 1
+
+
+def test_binary_outcome_only_in_the_exposed_group(frame):
+    # Every event among the exposed: the risk ratio is infinite, its E-value undefined. The
+    # risk difference and the test are well defined, so a secondary measure must not abort the
+    # analysis with an internal message; a result (or an error naming --outcome) is expected.
+    only = frame.assign(ev=((frame["grp"] == "night") & (frame.index % 2 == 0)).astype(int))
+    try:
+        res = run(only, outcome="ev")
+    except InputError as exc:
+        assert "--outcome" in str(exc), str(exc)
+    else:
+        d = res.to_dict()
+        assert d["adjusted"]["estimate"] is not None and 0 < d["test"]["p_value"] <= 1
+
+
+def test_binary_outcome_identical_to_the_exposure(frame):
+    # The outcome is the exposure recoded (a common extract mistake): the risk ratio is
+    # undefined. Expected: a one-line error naming --outcome, or a result; not an internal name.
+    same = frame.assign(ev=(frame["grp"] == "night").astype(int))
+    try:
+        res = run(same, outcome="ev")
+    except InputError as exc:
+        assert "--outcome" in str(exc) and "\n" not in str(exc), str(exc)
+    else:
+        assert 0 < res.to_dict()["test"]["p_value"] <= 1
+
+
+def test_user_strata_lacking_a_group_are_set_aside(frame):
+    site = np.where(frame.index < 20, "solo", np.where(frame.index % 2, "A", "B"))
+    solo = frame.assign(site=site)
+    solo["grp"] = np.where(solo["site"] == "solo", "night", solo["grp"])
+    res = run(solo, strata_column="site")
+    assert warned(res, "StrataWarning")
+    assert res.to_dict()["flow"]["strata_set_aside_by_group"]["exposed"] == 20
+
+
+def test_exact_engine_with_too_many_assignments(frame):
+    input_error(frame, r"engine.*exact.*monte_carlo", engine="exact")
+
+
+def test_min_per_group_larger_than_a_group(frame):
+    input_error(frame, r"min_per_group|--min-per-group", min_per_group=500)
 
 
 def test_tiny_sample_gets_a_result_or_a_clean_error(frame):

@@ -138,7 +138,8 @@ def test_fuzz_tables_reach_the_result_path():
     n = 60
     x = rng.normal(size=n)
     frame = pd.DataFrame({"ex": (rng.random(n) < 1 / (1 + np.exp(-x))).astype(int),
-                          "ÿ": x + rng.normal(size=n), "ко": x, "cat": rng.choice(["a", "b"], n)})
+                          "ÿ": x + rng.normal(size=n), "ко": x,
+                          "cat": rng.choice(["a", "b"], n)})
     result = stratagap.analyze(frame, exposure="ex", outcome="ÿ", covariates=["ко", "cat"],
                                resamples=50, n_strata=2, seed=1)
     _valid(result)

@@ -260,6 +260,9 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
         raise InputError(f"`--exposure` '{exposure}': after dropping rows with missing values only the {only} "
                          f"group ({levels[only]}) remains ({len(t)} rows); check the missing values")
     y, out_type, out_levels = _coding.code_outcome(work[outcome], outcome, outcome_type, outcome_event)
+    if out_type == "binary" and len(set(zip(y.tolist(), t.tolist()))) == 2:
+        raise InputError(f"`--outcome` column '{outcome}' is the exposure recoded (its two values match "
+                         "the groups exactly); choose the outcome column")
     design = _design.build(work, covariates, formula_used, t)
 
     strata = strata_levels = None

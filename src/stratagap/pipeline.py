@@ -25,7 +25,8 @@ from . import permutation as _permutation
 from . import scores as _scores
 from . import sensitivity as _sensitivity
 from . import strata as _strata
-from ._errors import InputError, MissingDataWarning, StrataWarning, StratagapWarning
+from ._errors import (InputError, MissingDataWarning, ModelWarning, StrataWarning,
+                      StratagapWarning)
 from .result import AnalysisResult, CAUTIONS, versions
 from .spec import AnalysisSpec
 from .verdict import write_verdict
@@ -253,8 +254,13 @@ def _sensitivity_block(spec, prepared, tests, adjusted, risk_ratio, y, t, X, lab
                                                two_sided=spec.alternative == "two-sided")
     if binary:
         rr = risk_ratio
-        e_value = _sensitivity.e_value(rr.estimate, rr.ci_low, rr.ci_high, measure="rr",
-                                       alpha=spec.alpha)
+        if all(v is not None and np.isfinite(v) and v > 0 for v in (rr.estimate, rr.ci_low, rr.ci_high)):
+            e_value = _sensitivity.e_value(rr.estimate, rr.ci_low, rr.ci_high, measure="rr",
+                                           alpha=spec.alpha)
+        else:
+            e_value = None
+            warnings.warn("E-value not computed: the standardized risk ratio or a confidence limit "
+                          "is undefined (a standardized risk of 0 or 1).", ModelWarning)
     else:
         sd = _pooled_sd(y, t)
         e_value = _sensitivity.e_value(adjusted.estimate, adjusted.ci_low, adjusted.ci_high,
