@@ -65,10 +65,13 @@ def lane_sum_rows(x: np.ndarray) -> np.ndarray:
     """Sums of the rows of ``x`` (h, n) in the module's fixed order (8 lanes, then pairs)."""
     h, n = x.shape
     pad = (-n) % LANES
-    flat = np.zeros((h, LANES + n + pad))  # a leading row of 0.0: every lane starts at 0.0
-    flat[:, LANES:LANES + n] = x
-    z = flat.reshape(h, -1, LANES)
-    lanes = np.cumsum(z, axis=1)[:, -1, :]  # cumsum is strictly sequential along the axis
+    if pad:
+        x = np.concatenate([x, np.zeros((h, pad))], axis=1)
+    z = x.reshape(h, -1, LANES)
+    # Reducing the middle axis of a C-ordered (h, R, 8) array: numpy's inner loop runs along
+    # the 8 lanes and adds row r into the accumulators for r = 0, 1, ...: sequential in each
+    # lane (tests/test_engine_jit.py checks it against a plain Python loop, bit for bit).
+    lanes = np.add.reduce(z, axis=1)
     return (((lanes[:, 0] + lanes[:, 1]) + (lanes[:, 2] + lanes[:, 3]))
             + ((lanes[:, 4] + lanes[:, 5]) + (lanes[:, 6] + lanes[:, 7])))
 
@@ -127,24 +130,25 @@ def _masked_sums_py(u, c, lt, nt, keys, m_s, vals, out):
     for i in range(h):
         row = u[i]
         cu = np.uint8(c[i])
-        for q in range(n):  # uint8 compare and select: vectorizes
-            mask[q] = np.uint8(1) if row[q] < cu else np.uint8(0)
         need = m_s - lt[i]
-        if need > 0:  # positions of the units at byte c: a vectorized any-equal test per
-            w = 0     # 64 bytes (about 1 in 4 blocks holds one), then a scan of that block
-            for q0 in range(0, n64, 64):
-                hit = np.uint8(0)
-                for q in range(q0, q0 + 64):
-                    hit |= np.uint8(1) if row[q] == cu else np.uint8(0)
-                if hit:
-                    for z in range(q0, q0 + 64):
-                        if row[z] == cu:
-                            pos[w] = z
-                            w += 1
-            for z in range(n64, n):
-                if row[z] == cu:
-                    pos[w] = z
-                    w += 1
+        w = 0
+        for q0 in range(0, n64, 64):  # the mask, and the positions of the units at byte c:
+            hit = np.uint8(0)         # a vectorized any-equal test per 64 bytes (about 1 in 4
+            for q in range(q0, q0 + 64):  # blocks holds one), then a scan of that block
+                x = row[q]
+                mask[q] = np.uint8(1) if x < cu else np.uint8(0)
+                hit |= np.uint8(1) if x == cu else np.uint8(0)
+            if hit:
+                for z in range(q0, q0 + 64):
+                    if row[z] == cu:
+                        pos[w] = z
+                        w += 1
+        for z in range(n64, n):
+            mask[z] = np.uint8(1) if row[z] < cu else np.uint8(0)
+            if row[z] == cu:
+                pos[w] = z
+                w += 1
+        if need > 0:
             order = np.argsort(keys[kp:kp + nt[i]], kind="mergesort")  # stable
             for z in range(need):
                 mask[pos[order[z]]] = 1

@@ -138,7 +138,12 @@ def _batches(v, tk, codes, n_strata, resamples, seed, batch_size, progress, work
             keep = raw[2]
             more = [c[keep][:, None] for c in extra[2]]
             more += [_centred(c[keep], codes, n_strata) for c in extra[3]]
-            full = np.column_stack([v] + more)
+            more = np.column_stack([v[:, :0]] + more)
+            # a column the request draws anyway is not drawn twice
+            more = more[:, [j for j in range(more.shape[1])
+                            if not any(np.array_equal(more[:, j], v[:, i])
+                                       for i in range(k))]]
+            full = np.column_stack([v, more])
             plan = _mc.make_plan(full, tk, codes, n_strata)  # rows sorted by v first: same
         sums = np.empty((full.shape[1], n_strata, resamples))
         for lo, hi, part in _mc.iter_batches(plan, resamples, seed, batch_size, progress,
