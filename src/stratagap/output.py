@@ -110,10 +110,6 @@ def write_result(result: AnalysisResult, folder: Path, *, report: bool = True) -
                               if k not in row}} for row in data["strata"]]
     put("strata.csv", _csv(strata_rows, STRATA_COLUMNS))
     if report:
-        try:
-            from .report import write_report
-        except ImportError:  # the report stage is optional at import time
-            write_report = None
-        if write_report is not None:
-            written.extend(write_report(result, folder, write=write_atomic))
+        from .report import write_report  # matplotlib loads only when a report is written
+        written.extend(write_report(result, folder, write=write_atomic))
     return written

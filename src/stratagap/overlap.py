@@ -15,6 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ._errors import EstimandWarning, InputError, OverlapWarning
+from .scores import check_score
 
 __all__ = ["OverlapResult", "apply_overlap", "RULES"]
 
@@ -133,15 +134,7 @@ def apply_overlap(score, t, *, estimand, rule="auto") -> OverlapResult:
     Crump RK, Hotz VJ, Imbens GW, Mitnik OA (2009). Dealing with limited overlap in estimation
     of average treatment effects. Biometrika 96:187-199.
     """
-    score = np.asarray(score, dtype=np.float64)
-    t = np.asarray(t)
-    if score.ndim != 1 or t.shape != score.shape:
-        raise InputError(f"`score` and `t` must be 1-d of equal length, got {score.shape} and "
-                         f"{t.shape}; pass one score per unit")
-    if not np.all(np.isin(t, (0, 1))):
-        raise InputError("`t` must hold only 0 (reference) and 1 (exposed); recode the exposure")
-    if not np.all(np.isfinite(score)) or score.min() < 0 or score.max() > 1:
-        raise InputError("`score` must be finite probabilities in [0, 1]; refit the score model")
+    score, t = check_score(score, t)
     estimand = str(estimand).lower()
     if estimand not in ("ate", "att"):
         raise InputError(f"`--estimand` must be 'ate' or 'att', got {estimand!r}")

@@ -115,8 +115,9 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
                                  # Imbens & Rubin 2015, ch. 13: a new block needs >= K + 2 units
                                  min_block=len(prepared.design_names) + 2)
     # Rows analysed: kept by the overlap rule and in a stratum holding both groups.
-    used = np.flatnonzero(keep)[np.asarray(strata.labels) >= 0]
-    labels = np.asarray(strata.labels)[np.asarray(strata.labels) >= 0]
+    in_stratum = np.asarray(strata.labels) >= 0
+    used = np.flatnonzero(keep)[in_stratum]
+    labels = np.asarray(strata.labels)[in_stratum]
     t, y, X = prepared.t[used], prepared.y[used], prepared.X[used]
     population = overlap.estimand_label
 
@@ -162,8 +163,8 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
                       "unweighted.", MissingDataWarning)
     heterogeneity = _heterogeneity_block(adjusted.per_stratum, y, t, labels, binary)
 
-    sensitivity = _sensitivity_block(spec, prepared, tests, adjusted, risk_ratio, y, t, X, labels,
-                                     used, binary)
+    sensitivity = _sensitivity_block(spec, terms, tests, adjusted, risk_ratio, y, t, X, labels,
+                                     binary)
     negative = _negative_control(spec, prepared, used, t, X, labels)
     flow = _flow(prepared, overlap, strata, used)
     parts = dict(
@@ -239,11 +240,9 @@ def _heterogeneity_block(per_stratum, y, t, labels, binary) -> dict:
     return out
 
 
-def _sensitivity_block(spec, prepared, tests, adjusted, risk_ratio, y, t, X, labels, used,
-                       binary) -> dict:
+def _sensitivity_block(spec, terms, tests, adjusted, risk_ratio, y, t, X, labels, binary) -> dict:
     main = tests["main"]
     direction = "greater" if main.statistic >= 0 else "less"
-    level = spec.alpha / 2 if spec.alternative == "two-sided" else spec.alpha
     statistic = "sum" if spec.statistic == "sum" else "mean_difference"
     bounds = _sensitivity.gamma_bounds(tests["values"], t, labels, estimand=spec.estimand,
                                        statistic=statistic, direction=direction,
@@ -266,13 +265,12 @@ def _sensitivity_block(spec, prepared, tests, adjusted, risk_ratio, y, t, X, lab
         e_value = _sensitivity.e_value(adjusted.estimate, adjusted.ci_low, adjusted.ci_high,
                                        measure="difference", outcome_sd=sd, se=adjusted.se,
                                        alpha=spec.alpha)
-    benchmarks = _sensitivity.covariate_benchmarks(
-        [dataclasses.replace(term, values=None if term.values is None else term.values[used])
-         for term in prepared.terms], X, y, t)
+    benchmarks = _sensitivity.covariate_benchmarks(terms, X, y, t)
     tipping = _sensitivity.tipping_grid(adjusted.estimate, adjusted.ci_low, adjusted.ci_high,
                                         measure="difference", benchmarks=benchmarks)
     return {"e_value": e_value, "bounds": bounds, "threshold": threshold,
-            "level": level, "direction": direction, "tipping": tipping}
+            "level": threshold.alpha,  # alpha, or alpha / 2 per side for a two-sided test
+            "direction": direction, "tipping": tipping}
 
 
 def _pooled_sd(y, t) -> float:

@@ -126,11 +126,11 @@ class AnalysisResult:
         threshold = jsonable(sens["threshold"])
         sensitivity = {
             "e_value": jsonable(sens["e_value"]),
-            "gamma_threshold": threshold.get("gamma") if isinstance(threshold, dict) else threshold,
+            "gamma_threshold": threshold["gamma"],
             "gamma_threshold_detail": threshold,
             "gamma_level": sens["level"],
             "gamma_direction": sens["direction"],
-            "gamma_curve": bounds.get("curve") if isinstance(bounds, dict) else bounds,
+            "gamma_curve": bounds["curve"],
             "gamma_bounds": bounds,
             "tipping": jsonable(sens["tipping"]),
         }
@@ -160,8 +160,8 @@ class AnalysisResult:
             "crude": jsonable(self.crude),
             "adjusted": adjusted,
             "heterogeneity": jsonable(self.heterogeneity),
-            "cross_checks": cross.get("rows", cross) if isinstance(cross, dict) else cross,
-            "cross_check_weights": cross.get("weights") if isinstance(cross, dict) else None,
+            "cross_checks": cross["rows"],
+            "cross_check_weights": cross["weights"],
             "sensitivity": sensitivity,
             "negative_control": jsonable(self.negative_control),
             "verdict": self.verdict,

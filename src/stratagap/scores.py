@@ -20,7 +20,7 @@ from scipy.special import expit
 from ._errors import InputError, ModelWarning, SeparationWarning
 from ._rng import check_seed, substream
 
-__all__ = ["PropensityFit", "fit_propensity"]
+__all__ = ["PropensityFit", "fit_propensity", "check_score"]
 
 #: Scores are clipped to this distance from 0 and 1 before the logit is taken.
 CLIP = 1e-6
@@ -390,3 +390,23 @@ def _fit_boosting(X, t, folds, seed):
     return PropensityFit(score=score, logit=_logit_of(score), auc=_auc(t, score),
                          method="boosting", penalized=False, separation_terms=[], converged=True,
                          coefficients=None, folds=folds, seed=seed, notes=[note])
+
+
+def check_score(score, t, *, probabilities=True):
+    """Check a score/exposure pair handed to a later stage; returns float64 score, int8 t.
+
+    ``probabilities=False`` accepts any finite balancing score (subclassification works on any
+    monotone transform of the propensity score, or on a single confounder itself).
+    """
+    score = np.asarray(score, dtype=np.float64)
+    t = np.asarray(t)
+    if score.ndim != 1 or t.shape != score.shape:
+        raise InputError(f"`score` and `t` must be 1-d of equal length, got {score.shape} and "
+                         f"{t.shape}; pass one score per unit")
+    if not np.all(np.isin(t, (0, 1))):
+        raise InputError("`t` must hold only 0 (reference) and 1 (exposed); recode the exposure")
+    if not np.all(np.isfinite(score)):
+        raise InputError("`score` holds NaN or inf values; refit the score model")
+    if probabilities and (score.min() < 0 or score.max() > 1):
+        raise InputError("`score` must be probabilities in [0, 1]; refit the score model")
+    return score, t.astype(np.int8)

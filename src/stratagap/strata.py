@@ -15,6 +15,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ._errors import InputError, StrataWarning
+from .scores import check_score
 
 __all__ = ["Strata", "make_strata", "stratum_weights", "unit_weights", "METHODS"]
 
@@ -139,16 +140,7 @@ def make_strata(score, t, *, estimand, n_strata=5, method="quantile", min_per_gr
     Imbens GW, Rubin DB (2015). Causal Inference for Statistics, Social, and Biomedical
     Sciences. Cambridge University Press, ch. 13 and 17.
     """
-    score = np.asarray(score, dtype=np.float64)
-    t = np.asarray(t)
-    if score.ndim != 1 or t.shape != score.shape:
-        raise InputError(f"`score` and `t` must be 1-d of equal length, got {score.shape} and "
-                         f"{t.shape}")
-    if not np.all(np.isin(t, (0, 1))):
-        raise InputError("`t` must hold only 0 (reference) and 1 (exposed); recode the exposure")
-    if not np.all(np.isfinite(score)):
-        raise InputError("`score` holds NaN or inf values; refit the score model")
-    t = t.astype(np.int8)
+    score, t = check_score(score, t, probabilities=False)
     estimand = str(estimand).lower()
     if estimand not in ("ate", "att"):
         raise InputError(f"`--estimand` must be 'ate' or 'att', got {estimand!r}")
