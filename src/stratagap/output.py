@@ -92,6 +92,19 @@ STRATA_COLUMNS = ["stratum", "score_low", "score_high", "n_exposed", "n_referenc
                   "weight", "estimate", "se", "ci_low", "ci_high", "model"]
 
 
+def balance_csv(data: dict) -> str:
+    """balance.csv: one row per balance term, from ``result.to_dict()``."""
+    return _csv(data["balance"].get("rows", []), BALANCE_COLUMNS)
+
+
+def strata_csv(data: dict) -> str:
+    """strata.csv: the strata joined with the headline's per-stratum estimates."""
+    per = {row["stratum"]: row for row in data["adjusted"].get("per_stratum", [])}
+    strata_rows = [{**row, **{k: v for k, v in per.get(row.get("stratum"), {}).items()
+                              if k not in row}} for row in data["strata"]]
+    return _csv(strata_rows, STRATA_COLUMNS)
+
+
 def write_result(result: AnalysisResult, folder: Path, *, report: bool = True) -> list[Path]:
     """Write results.json, run.json, balance.csv, strata.csv (and the report) into ``folder``."""
     folder = Path(folder)
@@ -104,11 +117,8 @@ def write_result(result: AnalysisResult, folder: Path, *, report: bool = True) -
 
     put("results.json", to_json(data))
     put("run.json", to_json(result.run))  # timings and versions: kept out of results.json
-    put("balance.csv", _csv(data["balance"].get("rows", []), BALANCE_COLUMNS))
-    per = {row["stratum"]: row for row in data["adjusted"].get("per_stratum", [])}
-    strata_rows = [{**row, **{k: v for k, v in per.get(row.get("stratum"), {}).items()
-                              if k not in row}} for row in data["strata"]]
-    put("strata.csv", _csv(strata_rows, STRATA_COLUMNS))
+    put("balance.csv", balance_csv(data))
+    put("strata.csv", strata_csv(data))
     if report:
         from .report import write_report  # matplotlib loads only when a report is written
         written.extend(write_report(result, folder, write=write_atomic))
