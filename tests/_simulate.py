@@ -31,7 +31,9 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.special import expit
 
-from stratagap import effects, overlap, permutation, scores, strata
+from stratagap.estimation import effects
+from stratagap.stratify import overlap, scores, strata
+from stratagap.inference import permutation
 
 __all__ = ["Sim", "dataset_rng", "normal_null", "mixed_binary_null", "exp_null",
            "heterogeneous_effect", "spline_design", "propensity", "analyse", "run_study"]

@@ -588,7 +588,7 @@ def test_recorded_command_is_the_one_given(written):
 
 
 def test_a_failed_write_leaves_neither_temporary_nor_partial_file(tmp_path, monkeypatch):
-    from stratagap import output
+    from stratagap.render import files as output
 
     target = tmp_path / "results.json"
     target.write_text("old\n")

@@ -3,7 +3,9 @@
 import numpy as np
 import pytest
 
-from stratagap import data, effects, overlap, scores, strata
+from stratagap import data
+from stratagap.estimation import effects
+from stratagap.stratify import overlap, scores, strata
 from stratagap.demo import DEMO_COVARIATES, make_shift_work_data, true_effects
 
 

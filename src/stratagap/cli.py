@@ -16,7 +16,7 @@ import sys
 import traceback
 from pathlib import Path
 
-from ._errors import InputError
+from .errors import InputError
 
 __all__ = ["main"]
 
@@ -139,7 +139,7 @@ def _check_format(fmt):
 
 def _run_analyze(args) -> int:
     from .data import read_table
-    from .output import prepare_folder, write_result
+    from .render.files import prepare_folder, write_result
     from .pipeline import analyze
 
     _check_format(args.format)
@@ -166,7 +166,7 @@ def _run_analyze(args) -> int:
 
 def _run_demo(args) -> int:
     from .demo import DEMO_COVARIATES, make_shift_work_data, true_effects
-    from .output import prepare_folder, write_atomic, write_result
+    from .render.files import prepare_folder, write_atomic, write_result
     from .pipeline import analyze
     from .spec import AnalysisSpec
 
@@ -205,7 +205,7 @@ def _run_demo(args) -> int:
 
 
 def _print(result, args, truth=None):
-    from .summary import render_summary
+    from .render.summary import render_summary
     if args.quiet:
         return
     if args.format == "json":

@@ -15,21 +15,21 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from . import balance as _balance
-from . import crosscheck as _crosscheck
+from .stratify import balance as _balance
+from .estimation import crosscheck as _crosscheck
 from . import data as _data
-from . import effects as _effects
-from . import heterogeneity as _heterogeneity
-from . import overlap as _overlap
-from . import permutation as _permutation
-from . import scores as _scores
+from .estimation import effects as _effects
+from .estimation import heterogeneity as _heterogeneity
+from .stratify import overlap as _overlap
+from .inference import permutation as _permutation
+from .stratify import scores as _scores
 from . import sensitivity as _sensitivity
-from . import strata as _strata
-from ._errors import (InputError, MissingDataWarning, ModelWarning, StrataWarning,
+from .stratify import strata as _strata
+from .errors import (InputError, MissingDataWarning, ModelWarning, StrataWarning,
                       StratagapWarning)
 from .result import AnalysisResult, CAUTIONS, versions
 from .spec import AnalysisSpec
-from .verdict import write_verdict
+from .render.verdict import write_verdict
 
 __all__ = ["analyze"]
 
@@ -188,7 +188,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
 def _tests(spec, y, t, X, labels, binary, progress) -> dict:
     """The default test, its studentized companion and (binary outcomes) the MH sum test.
 
-    Under one :class:`stratagap.permutation.shared_draws` the Monte Carlo engine draws the
+    Under one :class:`stratagap.inference.permutation.shared_draws` the Monte Carlo engine draws the
     shuffles once for the default statistic, its studentized companion and (continuous outcomes)
     the residualized exposure of the constant-effect inversion; every result is bit-identical
     to separate runs. For continuous outcomes ``out["draws"]`` carries that cache to the

@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 from importlib import metadata
 from typing import Any
 
-from ._jsonable import jsonable
+from ._base.jsonable import jsonable
 from .spec import AnalysisSpec
 
 __all__ = ["AnalysisResult", "CAUTIONS", "to_json", "jsonable"]
@@ -95,11 +95,11 @@ class AnalysisResult:
 
     @property
     def tables(self):
-        from .tables import ResultTables
+        from .render.tables import ResultTables
         return ResultTables(self)
 
     def _repr_html_(self) -> str:  # notebooks
-        from .report import render_html
+        from .render.report import render_html
         return render_html(self, compact=True)
 
     # -- JSON --------------------------------------------------------------------------

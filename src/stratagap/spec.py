@@ -16,8 +16,8 @@ from pathlib import Path
 
 import numpy as np
 
-from ._errors import InputError
-from ._rng import check_seed
+from .errors import InputError
+from ._base.rng import check_seed
 
 if sys.version_info >= (3, 11):
     import tomllib

@@ -42,8 +42,8 @@ import pandas as pd
 import scipy
 from scipy import stats
 
-from stratagap import _engine_jit
-from stratagap import permutation as P
+from stratagap.inference._engines import compiled as _engine_jit
+from stratagap.inference import permutation as P
 
 TARGETS = {"continuous_1m_5": 10.0, "binary_sum_1m_5": 1.0, "analyze_s": 15.0,
            "analyze_memory_ratio": 5.0, "ratio": 100.0}
@@ -362,7 +362,7 @@ NOTES = """\
   CPU per unit and resample in all (random bytes included; see the CPU column), several times
   less than the numpy version, which remains as the fallback (`STRATAGAP_NO_JIT=1` or numba
   missing). Both add in one fixed order (8 lanes)
-  so they give bit-identical results; `tests/test_engine_jit.py` checks that.
+  so they give bit-identical results; `tests/inference/test_compiled.py` checks that.
 - Threads draw whole blocks of 250 resamples (streams keyed by block), so results do not depend
   on the number of threads or the batch size; with the compiled kernels every core is used by
   default.

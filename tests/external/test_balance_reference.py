@@ -14,10 +14,10 @@ import pytest
 from scipy.stats import ks_2samp
 from statsmodels.stats.weightstats import DescrStatsW
 
-from stratagap.balance import balance_table
+from stratagap.stratify.balance import balance_table
 
 # Arbitrary weights leave the terms imbalanced; that warning is not what is checked here.
-pytestmark = pytest.mark.filterwarnings("ignore::stratagap._errors.BalanceWarning")
+pytestmark = pytest.mark.filterwarnings("ignore::stratagap.errors.BalanceWarning")
 
 
 @dataclass

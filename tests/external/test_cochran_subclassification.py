@@ -15,7 +15,7 @@ import pytest
 from scipy.optimize import brentq
 from scipy.stats import norm
 
-from stratagap.strata import make_strata, stratum_weights, unit_weights
+from stratagap.stratify.strata import make_strata, stratum_weights, unit_weights
 
 
 def limit_share_removed(k=5):

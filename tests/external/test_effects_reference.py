@@ -17,8 +17,8 @@ import pytest
 sm = pytest.importorskip("statsmodels.api")
 from statsmodels.stats.contingency_tables import StratifiedTable  # noqa: E402
 
-from stratagap import effects  # noqa: E402
-from stratagap._errors import ModelWarning  # noqa: E402
+from stratagap.estimation import effects  # noqa: E402
+from stratagap.errors import ModelWarning  # noqa: E402
 
 
 def _data(n=1500, seed=3, binary=False):

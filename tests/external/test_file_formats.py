@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from stratagap._errors import InputError
+from stratagap.errors import InputError
 from stratagap.data import prepare, read_table
 
 

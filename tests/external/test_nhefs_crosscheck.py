@@ -15,7 +15,7 @@ import pandas as pd
 import pytest
 from scipy import stats
 
-from stratagap.crosscheck import cross_checks, ipw, standardize
+from stratagap.estimation.crosscheck import cross_checks, ipw, standardize
 
 Z975 = stats.norm.ppf(0.975)
 

@@ -20,8 +20,8 @@ import pytest
 sm = pytest.importorskip("statsmodels.api")
 causaldata = pytest.importorskip("causaldata")
 
-from stratagap import effects  # noqa: E402
-from stratagap._errors import ModelWarning  # noqa: E402
+from stratagap.estimation import effects  # noqa: E402
+from stratagap.errors import ModelWarning  # noqa: E402
 
 
 @pytest.fixture(scope="module")

@@ -17,7 +17,7 @@ import statsmodels.api as sm
 from scipy import stats
 from statsmodels.stats.contingency_tables import StratifiedTable
 
-from stratagap import permutation as P
+from stratagap.inference import permutation as P
 
 
 @pytest.mark.parametrize("alternative", ["two-sided", "greater", "less"])

@@ -86,8 +86,8 @@ def cases():
 def render(name) -> dict[str, str]:
     """The four golden files of one case, as text."""
     import stratagap
-    from stratagap.output import balance_csv, strata_csv
-    from stratagap.summary import render_summary
+    from stratagap.render.files import balance_csv, strata_csv
+    from stratagap.render.summary import render_summary
     from stratagap.result import to_json
 
     make, options = cases()[name]

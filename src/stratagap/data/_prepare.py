@@ -1,0 +1,414 @@
+"""Stage 1, data: read a table and turn the chosen columns into the arrays every later stage uses.
+
+:func:`read_table` reads CSV, Parquet, Stata and SAS transport files (see ``_readers``).
+:func:`prepare` checks the exposure, outcome and covariate columns, codes the exposure as
+``t`` (1 = exposed), the outcome as ``y``, builds the covariate design ``X`` (numeric columns,
+one-hot dummies with the first sorted level as reference, or a Wilkinson formula), applies the
+missing-data policy, and puts the rows in a canonical order so results do not depend on row order.
+
+References
+----------
+Groenwold RHH, White IR, Donders ART, et al. (2012). Missing covariate data in clinical research:
+when and when not to use the missing-indicator method for analysis. CMAJ 184(11):1265-1269.
+Hernán MA, Robins JM (2020). Causal Inference: What If. Chapman & Hall/CRC, §12.6.
+"""
+
+from __future__ import annotations
+
+import difflib
+import re
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from ..errors import DataWarning, InputError, MissingDataWarning
+from ._readers import read_table
+from . import _coding
+from . import _covariates as _design
+
+__all__ = ["read_table", "prepare", "observed_weights", "PreparedData", "BalanceTerm", "Flow"]
+
+BalanceTerm = _design.BalanceTerm
+_GROUPS = {"exposed": 1, "reference": 0, "unknown": -1}
+_FLAGS = {"censored", "censor", "cens", "event", "status", "death", "died", "dead"}
+_DURATIONS = {"time", "days", "months", "years", "followup", "duration", "survival", "surv", "tte"}
+
+
+@dataclass(frozen=True)
+class Flow:
+    """Row counts from the file to the analysed rows.
+
+    ``dropped_missing_by_column`` counts, per analysed column, the rows it was missing in (a row
+    missing two columns counts in both); ``dropped_missing_by_group`` counts each dropped row once
+    by its exposure group ("unknown" when the exposure itself is missing).
+    """
+
+    rows_read: int
+    dropped_missing_by_column: dict
+    dropped_missing_by_group: dict
+    missing_outcome_by_group: dict
+    rows_used: int
+    used_by_group: dict = field(default_factory=dict)
+    missing_policy: str = "drop"
+    missing_outcome_p_value: float | None = None
+    negative_control_missing: int = 0
+    trimmed_by_group: dict | None = None
+    strata_set_aside_by_group: dict | None = None
+    analysed_by_group: dict | None = None
+
+    def to_dict(self) -> dict:
+        p = self.missing_outcome_p_value
+        return {
+            "rows_read": int(self.rows_read),
+            "dropped_missing_by_column": {str(k): int(v) for k, v in self.dropped_missing_by_column.items()},
+            "dropped_missing_by_group": {str(k): int(v) for k, v in self.dropped_missing_by_group.items()},
+            "missing_outcome_by_group": {
+                str(g): {"n": int(d["n"]), "share": _jsonf(d["share"])}
+                for g, d in self.missing_outcome_by_group.items()},
+            "missing_outcome_p_value": _jsonf(p),
+            "negative_control_missing": int(self.negative_control_missing),
+            "rows_used": int(self.rows_used),
+            "used_by_group": {str(k): int(v) for k, v in self.used_by_group.items()},
+            "missing_policy": self.missing_policy,
+            "trimmed_by_group": _intdict(self.trimmed_by_group),
+            "strata_set_aside_by_group": _intdict(self.strata_set_aside_by_group),
+            "analysed_by_group": _intdict(self.analysed_by_group),
+        }
+
+
+@dataclass(frozen=True, eq=False)
+class PreparedData:
+    """The analysed rows, coded; arrays follow the conventions of ``docs/architecture.md``.
+
+    ``negative_control`` keeps NaN for rows missing it: those rows stay in the main analysis.
+    ``censoring_weights`` (only with ``censoring_weights=True``) are 1 / P(outcome observed |
+    covariates, exposure) for the analysed rows. ``row_ids`` are the rows' 0-based
+    positions in the input table.
+    """
+
+    t: np.ndarray
+    y: np.ndarray
+    X: np.ndarray
+    design_names: list
+    terms: list
+    outcome_type: str
+    exposure_levels: dict
+    flow: Flow
+    covariates: list
+    raw: pd.DataFrame
+    user_strata: np.ndarray | None
+    negative_control: np.ndarray | None
+    outcome_levels: dict | None
+    censoring_weights: np.ndarray | None = None
+    exposure: str = ""
+    outcome: str = ""
+    formula: str | None = None
+    reference_levels: dict = field(default_factory=dict)
+    dropped_design_columns: list = field(default_factory=list)
+    strata_levels: list | None = None
+    row_ids: np.ndarray | None = None
+
+    def to_dict(self) -> dict:
+        """JSON-ready summary (no per-row arrays)."""
+        return {
+            "exposure": self.exposure, "outcome": self.outcome, "outcome_type": self.outcome_type,
+            "exposure_levels": dict(self.exposure_levels),
+            "outcome_levels": None if self.outcome_levels is None else dict(self.outcome_levels),
+            "covariates": list(self.covariates), "formula": self.formula,
+            "design_names": list(self.design_names), "terms": [t.to_dict() for t in self.terms],
+            "reference_levels": dict(self.reference_levels),
+            "dropped_design_columns": list(self.dropped_design_columns),
+            "strata_levels": None if self.strata_levels is None else list(self.strata_levels),
+            "censoring_weights": self.censoring_weights is not None,
+            "flow": self.flow.to_dict(),
+        }
+
+
+def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome_type="auto",
+            formula=None, missing="drop", strata_column=None, negative_control=None,
+            outcome_event=None, censoring_weights=False) -> PreparedData:
+    """Check and code the analysed columns of ``table``.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        The input table; it is not modified.
+    exposure, outcome : str
+        Column names. The exposure must have exactly two values: 0/1 and True/False need no
+        flag (1/True = exposed); otherwise ``exposed_value`` names the exposed value.
+    covariates : list of str, comma-separated str, or None
+        Covariate columns; may be None when ``formula`` is given (its variables are used).
+    exposed_value : optional
+        The exposure value meaning "exposed" (compared also by string and numeric value).
+    outcome_type : {"auto", "binary", "continuous"}
+        "auto": two values -> binary (0/1, True/False, or ``outcome_event``), numeric -> continuous.
+    formula : str, optional
+        Wilkinson right-hand side for the design, e.g. ``"age + I(age**2) + C(edu) + a:b"``
+        (formulaic); no intercept column is kept in ``X``.
+    missing : {"drop", "error", "indicator"}
+        Policy for missing covariates: complete cases; an error; or the missing-indicator
+        method (numeric filled with 0 plus ``<col>__missing``, categoricals get "(missing)").
+        Rows missing the exposure, the outcome or the strata column are always dropped.
+    strata_column : str, optional
+        User-given strata, coded 0..S-1 by sorted value.
+    negative_control : str, optional
+        A numeric negative-control outcome; rows missing it are kept (NaN).
+    outcome_event : optional
+        For a binary outcome whose two values are not 0/1 or True/False: the event value.
+    censoring_weights : bool
+        Also compute inverse-probability-of-censoring weights for the analysed rows.
+
+    Returns
+    -------
+    PreparedData
+
+    Raises
+    ------
+    InputError
+        For every ill-posed input; the message names the column or argument and the fix.
+    """
+    if not isinstance(table, pd.DataFrame):
+        raise InputError(f"`table` must be a pandas DataFrame, got {type(table).__name__}; use read_table(path)")
+    dup = sorted({str(c) for c in table.columns[table.columns.duplicated()]})
+    if dup:
+        raise InputError(f"the table has duplicate column names ({', '.join(dup)}); rename them so each is unique")
+    if len(table) == 0:
+        raise InputError("the table has no rows; check the input file or the row filter")
+    if missing not in ("drop", "error", "indicator"):
+        raise InputError(f"`--missing` must be drop, error or indicator, got {missing!r}")
+    if outcome_type not in ("auto", "binary", "continuous"):
+        raise InputError(f"`--outcome-type` must be auto, binary or continuous, got {outcome_type!r}")
+    covariates = _covariate_list(table, covariates, formula)
+    formula = _design.clean_formula(formula)
+    names = {"--exposure": exposure, "--outcome": outcome, "--strata-column": strata_column,
+             "--negative-control": negative_control}
+    for arg, col in names.items():
+        if col is not None:
+            _need(table, col, arg)
+    for col in covariates:
+        if col in (exposure, outcome):
+            raise InputError(f"`--covariates` includes '{col}', which is the {'exposure' if col == exposure else 'outcome'}; remove it")
+    if exposure == outcome:
+        raise InputError(f"`--exposure` and `--outcome` are the same column '{exposure}'; choose two different columns")
+    for arg, col in (("--strata-column", strata_column), ("--negative-control", negative_control)):
+        if col is not None and col in (exposure, outcome, *covariates):
+            raise InputError(f"`{arg}` '{col}' is also the exposure, outcome or a covariate; choose another column")
+    if negative_control is not None and not pd.api.types.is_numeric_dtype(table[negative_control]):
+        raise InputError(f"`--negative-control` column '{negative_control}' is not numeric; "
+                         "a negative-control outcome must be numbers (0/1 for a binary one)")
+    for arg, cols in (("--exposure", [exposure]), ("--outcome", [outcome]), ("--covariates", covariates),
+                      ("--negative-control", [negative_control] if negative_control else [])):
+        for col in cols:
+            _check_column_type(table[col], col, arg)
+    _warn_time_to_event(table, outcome)
+
+    n_read = len(table)
+    ex = table[exposure]
+    known = ex.notna().to_numpy()
+    exposed, levels = _coding.code_exposure(ex[known], exposure, exposed_value)
+    group = np.full(n_read, -1, dtype=np.int8)  # 1 exposed, 0 reference, -1 exposure missing
+    group[known] = exposed
+
+    miss = {c: table[c].isna().to_numpy() for c in dict.fromkeys([exposure, outcome, *covariates])}
+    if strata_column is not None:
+        miss[strata_column] = table[strata_column].isna().to_numpy()
+    if missing == "error":
+        bad = {c: int(miss[c].sum()) for c in covariates if miss[c].any()}
+        if bad:
+            listed = ", ".join(f"'{c}': {k}" for c, k in bad.items())
+            raise InputError(f"`--missing error`: covariates have missing values ({listed}); "
+                             "fill them, or use --missing drop (complete cases) or --missing indicator")
+    drop_cols = [c for c in miss if missing != "indicator" or c not in covariates]
+    dropped = np.zeros(n_read, bool)
+    for c in drop_cols:
+        dropped |= miss[c]
+    by_column = {c: int(miss[c].sum()) for c in drop_cols}
+    by_group = {g: int(np.sum(dropped & (group == code))) for g, code in _GROUPS.items()}
+    miss_out, p_out = _missing_outcome(group, miss[outcome])
+    if dropped.all():
+        worst = sorted(by_column, key=lambda c: -by_column[c])[:3]
+        listed = ", ".join(f"'{c}' ({by_column[c]} rows)" for c in worst)
+        raise InputError(f"no rows are left after dropping rows with missing values; most were removed by "
+                         f"{listed}: check these columns or use --missing indicator for covariates")
+
+    # Candidate rows: everything known except possibly the outcome (they feed the censoring model).
+    cand_mask = ~np.logical_or.reduce([miss[c] for c in drop_cols if c != outcome])
+    cols = list(dict.fromkeys([exposure, outcome, *covariates, *(c for c in (strata_column, negative_control) if c)]))
+    cand = table.loc[cand_mask, cols].copy()
+    cand["__row__"] = np.flatnonzero(cand_mask)
+    cand["__t__"] = group[cand_mask]
+    order = _coding.canonical_order(cand, ["__t__", *cols])
+    cand = cand.iloc[order].reset_index(drop=True)
+    filled, formula_used = _design.fill_missing(cand, covariates, formula, missing)
+    keep = cand[outcome].notna().to_numpy()
+
+    cw = None
+    if censoring_weights:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            Xc = _design.build(filled, covariates, formula_used, cand["__t__"].to_numpy()).X
+        cw = observed_weights(Xc, cand["__t__"].to_numpy(), keep)[keep]
+
+    work = filled.loc[keep].reset_index(drop=True)
+    raw = cand.loc[keep, cols].reset_index(drop=True)
+    t = work["__t__"].to_numpy().astype(np.int8)
+    n1 = int(t.sum())
+    if n1 == 0 or n1 == len(t):
+        only = "exposed" if n1 else "reference"
+        raise InputError(f"`--exposure` '{exposure}': after dropping rows with missing values only the {only} "
+                         f"group ({levels[only]}) remains ({len(t)} rows); check the missing values")
+    y, out_type, out_levels = _coding.code_outcome(work[outcome], outcome, outcome_type, outcome_event)
+    if out_type == "binary" and len(set(zip(y.tolist(), t.tolist()))) == 2:
+        raise InputError(f"`--outcome` column '{outcome}' is the exposure recoded (its two values match "
+                         "the groups exactly); choose the outcome column")
+    design = _design.build(work, covariates, formula_used, t)
+
+    strata = strata_levels = None
+    if strata_column is not None:
+        strata, strata_levels = _coding.codes(work[strata_column])
+        strata_levels = [_fmt(v) for v in strata_levels]
+    nc = None
+    if negative_control is not None:
+        nc = work[negative_control].to_numpy(dtype=np.float64, na_value=np.nan)
+
+    flow = Flow(rows_read=n_read, dropped_missing_by_column=by_column, dropped_missing_by_group=by_group,
+                missing_outcome_by_group=miss_out, rows_used=len(t),
+                used_by_group={"exposed": n1, "reference": len(t) - n1}, missing_policy=missing,
+                missing_outcome_p_value=p_out,
+                negative_control_missing=0 if nc is None else int(np.isnan(nc).sum()))
+    return PreparedData(
+        t=t, y=y, X=design.X, design_names=design.names, terms=design.terms, outcome_type=out_type,
+        exposure_levels=levels, flow=flow, covariates=design.covariates, raw=raw, user_strata=strata,
+        negative_control=nc, outcome_levels=out_levels, censoring_weights=cw, exposure=exposure,
+        outcome=outcome, formula=formula_used, reference_levels=design.reference_levels,
+        dropped_design_columns=design.dropped, strata_levels=strata_levels,
+        row_ids=work["__row__"].to_numpy().astype(np.int64))
+
+
+def observed_weights(X, t, observed) -> np.ndarray:
+    """Inverse-probability-of-censoring weights, 1 / P(outcome observed | X, t).
+
+    A logistic model of ``observed`` on an intercept, ``X`` and ``t`` (statsmodels GLM,
+    Binomial). Rows with an unobserved outcome get weight 0. When the model separates, a
+    ridge-penalized fit is used instead (with a :class:`MissingDataWarning`).
+
+    References
+    ----------
+    Hernán MA, Robins JM (2020). Causal Inference: What If, §12.6 (IP weighting for censoring).
+    """
+    import statsmodels.api as sm
+
+    observed = np.asarray(observed, bool)
+    w = np.zeros(observed.shape[0])
+    if observed.all():
+        return w + 1.0
+    Z = np.column_stack([np.ones(len(observed)), np.asarray(X, float), np.asarray(t, float)])
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error")
+            fit = sm.GLM(observed.astype(float), Z, family=sm.families.Binomial()).fit()
+        p = fit.predict(Z)
+        if not fit.converged or np.min(p[observed]) < 1e-8:
+            raise RuntimeError("no convergence")
+    except Exception:
+        warnings.warn("censoring-weight model (outcome observed ~ covariates + exposure) separated or did "
+                      "not converge; a ridge-penalized fit was used", MissingDataWarning, stacklevel=2)
+        fit = sm.GLM(observed.astype(float), Z, family=sm.families.Binomial()).fit_regularized(
+            alpha=1e-3, L1_wt=0.0)
+        p = 1.0 / (1.0 + np.exp(-Z @ fit.params))
+    w[observed] = 1.0 / p[observed]  # Hernán & Robins 2020, §12.6: W^C = 1 / Pr[C = 0 | L, A]
+    return w
+
+
+# ---------------------------------------------------------------------------------------------
+def _covariate_list(table, covariates, formula) -> list:
+    if isinstance(covariates, str):
+        covariates = [c.strip() for c in covariates.split(",") if c.strip()]
+    covariates = list(dict.fromkeys(covariates or []))
+    for col in covariates:
+        _need(table, col, "--covariates")
+    if formula is None:
+        if not covariates:
+            raise InputError("`--covariates` is empty; name at least one covariate column or give --formula")
+        return covariates
+    variables = _design.formula_variables(formula)
+    for var in variables:
+        _need(table, var, "--formula")
+    unused = [c for c in covariates if c not in variables]
+    if unused:
+        raise InputError(f"`--covariates` names {', '.join(map(repr, unused))}, which the --formula does not use; "
+                         "add them to the formula or remove them from --covariates")
+    return covariates + [v for v in variables if v not in covariates]
+
+
+def _need(table, col, arg) -> None:
+    if col in table.columns:
+        return
+    close = difflib.get_close_matches(str(col), [str(c) for c in table.columns], n=3, cutoff=0.6)
+    hint = f"; did you mean {' or '.join(map(repr, close))}?" if close else "; check the spelling"
+    raise InputError(f"`{arg}`: column '{col}' is not in the table{hint}")
+
+
+def _check_column_type(s: pd.Series, col, arg) -> None:
+    if pd.api.types.is_datetime64_any_dtype(s) or isinstance(s.dtype, pd.PeriodDtype):
+        what = "time-to-event outcomes are out of scope" if arg == "--outcome" else "convert it to a number (e.g. age or year)"
+        raise InputError(f"`{arg}` column '{col}' holds dates/times; {what}")
+    if pd.api.types.is_float_dtype(s):
+        k = int(np.isinf(s.to_numpy(dtype=float, na_value=np.nan)).sum())
+        if k:
+            raise InputError(f"`{arg}` column '{col}' has {k} infinite value(s) (inf/-inf); "
+                             "replace them with valid numbers or leave the cells empty (missing)")
+
+
+def _warn_time_to_event(table, outcome) -> None:
+    def tokens(name):
+        low = str(name).lower()
+        return set(re.split(r"[^a-z0-9]+", low)) | {low.replace("_", "").replace("-", "")}
+
+    out = tokens(outcome)
+    others = [tokens(c) for c in table.columns if c != outcome]
+    s = table[outcome].dropna()
+    dateish = "date" in str(outcome).lower()
+    if pd.api.types.is_integer_dtype(s) and len(s) and s.min() >= 19000101 and s.max() <= 21001231:
+        dateish |= bool(((s // 100 % 100).between(1, 12) & (s % 100).between(1, 31)).all())
+    if ((out & _DURATIONS and any(o & _FLAGS for o in others))
+            or (out & _FLAGS and any(o & _DURATIONS for o in others)) or dateish):
+        warnings.warn(f"`--outcome` '{outcome}' looks like part of a time-to-event outcome (a date, or a "
+                      "duration with a censoring flag); time-to-event outcomes are out of scope: censoring "
+                      "is not handled", DataWarning, stacklevel=3)
+
+
+def _missing_outcome(group, miss_y):
+    """Missing-outcome counts and shares per group; warn when they differ (two-proportion z-test)."""
+    out = {}
+    for g in ("exposed", "reference"):
+        n_g = int(np.sum(group == _GROUPS[g]))
+        m = int(np.sum(miss_y & (group == _GROUPS[g])))
+        out[g] = {"n": m, "share": m / n_g if n_g else float("nan")}
+    n1, n0 = int(np.sum(group == 1)), int(np.sum(group == 0))
+    m1, m0 = out["exposed"]["n"], out["reference"]["n"]
+    pooled = (m1 + m0) / (n1 + n0) if n1 + n0 else 0.0
+    if n1 == 0 or n0 == 0 or pooled in (0.0, 1.0):
+        return out, None
+    z = (m1 / n1 - m0 / n0) / np.sqrt(pooled * (1 - pooled) * (1 / n1 + 1 / n0))  # pooled two-proportion z
+    p = float(2 * stats.norm.sf(abs(z)))
+    if abs(m1 / n1 - m0 / n0) > 0.02 and p < 0.05:
+        warnings.warn(f"the outcome is missing for {m1 / n1:.1%} of the exposed and {m0 / n0:.1%} of the "
+                      f"reference group (p = {p:.2g}); complete-case analysis may be biased: consider the "
+                      "censoring_weights option (inverse-probability-of-censoring weights)",
+                      MissingDataWarning, stacklevel=3)
+    return out, p
+
+
+_fmt = _design.fmt
+
+
+def _jsonf(x):
+    return None if x is None or not np.isfinite(x) else float(x)
+
+
+def _intdict(d):
+    return None if d is None else {str(k): int(v) for k, v in d.items()}

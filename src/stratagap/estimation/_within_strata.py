@@ -1,0 +1,165 @@
+"""Regression adjustment inside one stratum: Lin's interacted least squares with HC2 errors.
+
+Private helper of :mod:`stratagap.estimation.effects`. One call fits one stratum and says which model it
+used and why. The model ladder, tried in order until one is estimable:
+
+1. covariate columns that are constant within the stratum, or constant except for a single unit
+   (a rare dummy level, which would give that unit leverage 1), are dropped; so are columns that
+   are linear combinations of the constant, the exposure and earlier columns (this leaves the
+   column space, hence the fit, unchanged);
+2. ``interactions``: ``y ~ 1 + t + Xc + t:Xc`` (Lin 2013), when each group has at least
+   ``p + min_extra`` units (``p`` = covariate columns kept), the design has full column rank
+   and no leverage reaches 1;
+3. ``main effects``: ``y ~ 1 + t + Xc`` under the same rank and leverage checks;
+4. ``difference of means`` with the Neyman variance ``s1^2/n1 + s0^2/n0`` (Imbens & Rubin 2015,
+   ch. 6); with a group of one unit its variance comes from the pooled within-stratum variance.
+
+``Xc`` is ``X`` centred at the stratum mean (ATE) or at the stratum's exposed mean (ATT), so the
+exposure coefficient is the stratum's average effect for that population and the intercept is
+the mean predicted reference-group outcome there (the standardized reference risk for binary y).
+Centred columns are also scaled to unit SD inside the fit: this changes neither the exposure
+coefficient nor the intercept, nor their HC2 covariance, and keeps the QR well conditioned.
+
+References
+----------
+Lin, W. (2013). Agnostic notes on regression adjustments to experimental data: reexamining
+Freedman's critique. Annals of Applied Statistics 7, 295-318.
+MacKinnon, J. G. & White, H. (1985). Some heteroskedasticity-consistent covariance matrix
+estimators with improved finite sample properties. Journal of Econometrics 29, 305-325 (HC2).
+Imbens, G. W. & Rubin, D. B. (2015). Causal Inference for Statistics, Social, and Biomedical
+Sciences. Cambridge University Press, ch. 6-7 and 17.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+#: A unit whose leverage is at least 1 - LEVERAGE_TOL has an undefined HC2 weight.
+LEVERAGE_TOL = 1e-10
+#: A column whose component orthogonal to the earlier columns has relative norm below this is
+#: treated as a linear combination of them.
+COLLINEAR_TOL = 1e-9
+
+
+def hc2_ols(D: np.ndarray, y: np.ndarray):
+    """OLS of ``y`` on ``D`` with the HC2 covariance, or ``(None, reason)`` if not estimable.
+
+    Returns ``(beta, cov, None)`` on success. HC2: ``(D'D)^-1 D' diag(e_i^2 / (1 - h_ii)) D
+    (D'D)^-1`` (MacKinnon & White 1985), computed from the thin QR ``D = QR``:
+    ``h_ii = ||Q_i||^2`` and ``(D'D)^-1 D' = R^-1 Q'``.
+    """
+    n, k = D.shape
+    if n <= k:
+        return None, None, f"{n} units for {k} coefficients"
+    Q, R = np.linalg.qr(D)
+    norms = np.linalg.norm(D, axis=0)
+    diag = np.abs(np.diag(R))
+    if np.any(diag <= COLLINEAR_TOL * np.where(norms > 0, norms, 1.0)):
+        return None, None, "design rank deficient"
+    h = np.einsum("ij,ij->i", Q, Q)  # leverages
+    if h.max() >= 1.0 - LEVERAGE_TOL:
+        return None, None, f"leverage reaches 1 for {int(np.sum(h >= 1.0 - LEVERAGE_TOL))} unit(s)"
+    Rinv = np.linalg.inv(R)  # k x k, upper triangular and well conditioned (scaled columns)
+    beta = Rinv @ (Q.T @ y)
+    e = y - D @ beta
+    u = e * e / (1.0 - h)  # MacKinnon & White 1985: HC2 weights
+    meat = (Q * u[:, None]).T @ Q
+    cov = Rinv @ meat @ Rinv.T
+    return beta, cov, None
+
+
+def _screen_columns(Xc: np.ndarray, t: np.ndarray, names):
+    """Drop constant, near-constant (single odd unit) and collinear columns; scale the rest."""
+    notes = []
+    n = Xc.shape[0]
+    keep = []
+    constant, singleton = [], []
+    for j in range(Xc.shape[1]):
+        col = Xc[:, j]
+        values, counts = np.unique(col, return_counts=True)
+        if len(values) == 1 or np.ptp(col) <= 1e-12 * max(1.0, np.abs(col).max()):
+            constant.append(names[j])
+        elif len(values) == 2 and counts.min() == 1 and n > 2:
+            singleton.append(names[j])
+        else:
+            keep.append(j)
+    if constant:
+        notes.append("constant within the stratum: " + ", ".join(constant))
+    if singleton:
+        notes.append("constant except for one unit (leverage 1): " + ", ".join(singleton))
+    Z = Xc[:, keep]
+    if Z.shape[1]:
+        Z = Z / Z.std(axis=0)
+        D = np.column_stack([np.ones(n), t, Z])
+        R = np.linalg.qr(D, mode="r")
+        diag = np.zeros(D.shape[1])  # with fewer units than columns the rest are dependent
+        diag[:min(D.shape)] = np.abs(np.diag(R))
+        rel = diag[2:] / np.linalg.norm(Z, axis=0)
+        dependent = rel <= COLLINEAR_TOL
+        if dependent.any():
+            notes.append("linear combination of other columns (or of the exposure): "
+                         + ", ".join(names[keep[j]] for j in np.flatnonzero(dependent)))
+            keep = [keep[j] for j in np.flatnonzero(~dependent)]
+            Z = Z[:, ~dependent]
+    return keep, Z, notes
+
+
+def difference_of_means(y: np.ndarray, t: np.ndarray):
+    """``(tau, cov of (a, tau), reason)`` for the plain within-stratum difference of means.
+
+    Neyman variance ``s1^2/n1 + s0^2/n0`` (Imbens & Rubin 2015, ch. 6); when a group has a
+    single unit its variance is replaced by the pooled within-stratum variance
+    ``((n1-1) s1^2 + (n0-1) s0^2) / (n - 2)`` (equal variances assumed for that stratum only);
+    with one unit in each group the variance is not estimable (NaN).
+    """
+    y1, y0 = y[t == 1], y[t == 0]
+    n1, n0 = len(y1), len(y0)
+    a, tau = y0.mean(), y1.mean() - y0.mean()
+    note = None
+    if n1 >= 2 and n0 >= 2:
+        v1, v0 = y1.var(ddof=1), y0.var(ddof=1)
+    elif n1 + n0 > 2:
+        ss = (((y1 - y1.mean()) ** 2).sum() + ((y0 - y0.mean()) ** 2).sum())
+        v1 = v0 = ss / (n1 + n0 - 2)  # pooled within-stratum variance
+        note = "a group of one unit: pooled within-stratum variance"
+    else:
+        v1 = v0 = np.nan
+        note = "one unit per group: variance not estimable within the stratum"
+    var_a = v0 / n0
+    cov = np.array([[var_a, -var_a], [-var_a, v1 / n1 + v0 / n0]])  # Imbens & Rubin 2015, ch. 6
+    return a, tau, cov, note
+
+
+def fit_stratum(y, t, X, *, estimand: str, min_extra: int, names):
+    """Fit one stratum. Returns a dict: a, tau, cov (2x2 of (a, tau)), model, reason, columns."""
+    n = len(y)
+    n1 = int(t.sum())
+    n0 = n - n1
+    tf = t.astype(float)
+    centre = X.mean(axis=0) if estimand == "ate" else X[t == 1].mean(axis=0)
+    Xc = X - centre
+    keep, Z, notes = _screen_columns(Xc, tf, names)
+    p = Z.shape[1]
+    tried = []
+    if p:
+        if n1 >= p + min_extra and n0 >= p + min_extra:
+            tried.append("interactions")
+        else:
+            notes.append(f"interactions need >= {p + min_extra} units of each group "
+                         f"({p} covariates + {min_extra}); found {n1} exposed, {n0} reference")
+        tried.append("main effects")
+    else:
+        notes.append("no covariate varies within the stratum")
+    for model in tried:
+        cols = [np.ones(n), tf, Z] + ([tf[:, None] * Z] if model == "interactions" else [])
+        beta, cov, why = hc2_ols(np.column_stack(cols), y)
+        if beta is not None:
+            return {"a": float(beta[0]), "tau": float(beta[1]), "cov": cov[:2, :2],
+                    "model": model, "reason": "; ".join(notes) or "all checks passed",
+                    "columns": [names[j] for j in keep]}
+        notes.append(f"{model}: {why}")
+    a, tau, cov, note = difference_of_means(y, tf)
+    if note:
+        notes.append(note)
+    return {"a": float(a), "tau": float(tau), "cov": cov, "model": "difference of means",
+            "reason": "; ".join(notes), "columns": []}

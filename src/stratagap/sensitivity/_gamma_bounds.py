@@ -1,0 +1,391 @@
+"""Rosenbaum-type bounds on the one-sided p-value of the stratified permutation test.
+
+Sensitivity model (Rosenbaum 2002, ch. 4): within stratum s the design fixes n1s exposed
+units, and an unobserved u in [0, 1] makes the chance of an exposed set A proportional to
+Gamma ** sum(u_i, i in A). Gamma = 1 is the randomization distribution of the core test.
+
+Two bounds, always of the statistic the core test reported:
+
+* binary values and the ``"sum"`` statistic (exposed events): the worst case is u = outcome;
+  each stratum's count is Fisher's noncentral hypergeometric with odds Gamma and the strata are
+  combined by exact convolution (matched pairs: Binomial(D, Gamma / (1 + Gamma)) over the D
+  discordant pairs), or by the normal approximation when the convolution is too large;
+* any values with ``"mean_difference"`` (the default covariance-adjusted statistic on residuals,
+  which are fixed under the sharp null) or ``"sum"``: a normal-approximation bracket. The lower
+  end is the asymptotically separable value (Gastwirth, Krieger & Rosenbaum 2000): per stratum
+  the cut vertex u = (0..0, 1..1) of the sorted values with the largest mean (ties: largest
+  variance). The upper end is conservative and provable: per stratum the largest mean over all
+  vertices (attained at a cut) and an upper bound on the variance over all vertices, combined.
+  For many small strata the two ends nearly meet; for a few large strata they bracket the
+  normal-approximation worst case. The upper end is not the one-step Taylor bound of
+  Rosenbaum (2018).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import optimize
+
+from ..errors import InputError
+from .._base.jsonable import jsonable as _jsonable
+from ._nchyper import _cut_moments, _normal_sf, _perm_moments
+from ._gamma_binary import _binary_exact_p, _binary_normal_p, _binary_setup, _convolution_cost
+
+__all__ = ["GammaBounds", "SensitivityValue", "gamma_bounds", "sensitivity_value",
+           "DEFAULT_GAMMAS", "GAMMA_CAP"]
+
+DEFAULT_GAMMAS = (1.0, 1.1, 1.2, 1.3, 1.5, 1.75, 2.0, 2.5, 3.0, 4.0, 5.0, 7.5, 10.0)
+#: Largest Gamma searched by :func:`sensitivity_value`; beyond it the result reads "> cap".
+GAMMA_CAP = 1e3
+#: Multiply-adds of the exact convolution above which the binary bound uses the normal approximation.
+EXACT_CONVOLUTION_BUDGET = 1e8
+
+_METHOD_TEXT = {
+    "exact": "exact: Fisher noncentral hypergeometric per stratum (u = outcome), exact convolution",
+    "normal_binary": "normal approximation from the per-stratum noncentral hypergeometric moments (u = outcome)",
+    "bracket": "normal approximation bracket: [separable (Gastwirth, Krieger & Rosenbaum 2000), conservative "
+               "(per-stratum maximum mean and variance bound over all vertices)]",
+}
+
+
+# ----------------------------------------------------------------------------- results
+@dataclass(frozen=True)
+class GammaBounds:
+    """Upper bounds on the one-sided p-value over a grid of Gamma.
+
+    Attributes
+    ----------
+    gammas : list of float
+    p_upper : list of float
+        The bound to quote: the exact bound (method "exact"), the normal bound ("normal_binary"),
+        or the conservative end of the bracket ("bracket").
+    p_separable : list of float
+        The separable value (lower end of the bracket; equals `p_upper` for the binary methods).
+    method : str
+        "exact", "normal_binary" or "bracket"; `method_text` says it in words.
+    statistic, direction, estimand : str
+    observed : float
+        The observed statistic, on the scale of the requested direction (negated for "less").
+    n_strata : int
+    moments : str
+        "exact" or "large-stratum approximation" (noncentral hypergeometric moments).
+    """
+
+    gammas: list
+    p_upper: list
+    p_separable: list
+    method: str
+    method_text: str
+    statistic: str
+    direction: str
+    estimand: str
+    observed: float
+    n_strata: int
+    moments: str = "exact"
+
+    def to_dict(self) -> dict:
+        d = {k: getattr(self, k) for k in ("method", "method_text", "statistic", "direction", "estimand",
+                                           "observed", "n_strata", "moments")}
+        d["curve"] = [{"gamma": g, "p_upper": p, "p_separable": q}
+                      for g, p, q in zip(self.gammas, self.p_upper, self.p_separable)]
+        return _jsonable(d)
+
+
+@dataclass(frozen=True)
+class SensitivityValue:
+    """The Gamma at which the one-sided p-value bound reaches alpha.
+
+    Attributes
+    ----------
+    gamma : float
+        Sensitivity value from the bound to quote (conservative end for a bracket); 1 when
+        not significant at Gamma = 1, `cap` when the bound stays below alpha up to the cap.
+    gamma_separable : float
+        The same from the separable value (upper end of the Gamma bracket; equals `gamma` for
+        the binary methods).
+    flag : str
+        "ok", "not significant at Gamma=1" or "> cap" (for `gamma`); "ok (the bound jumps across
+        alpha at this Gamma)" when the bound is discontinuous at the root (separable end only).
+    flag_separable : str
+    alpha : float
+        The one-sided level used; `alpha_note` says whether it is alpha or alpha/2 per side.
+    p_at_gamma : float
+        The bound evaluated at `gamma` (equals alpha when flag is "ok").
+    """
+
+    gamma: float
+    gamma_separable: float
+    flag: str
+    flag_separable: str
+    alpha: float
+    alpha_note: str
+    cap: float
+    p_at_gamma: float
+    method: str
+    statistic: str
+    direction: str
+    estimand: str
+    moments: str = "exact"
+
+    def to_dict(self) -> dict:
+        return _jsonable({k: getattr(self, k) for k in self.__dataclass_fields__})
+
+
+# ----------------------------------------------------------------------------- input
+@dataclass
+class _Design:
+    groups: list = field(default_factory=list)   # [(n, n1, V (G, n) sorted)] for strata with both groups
+    coef: list = field(default_factory=list)     # per group: (G,) weight of S_s in T
+    const: float = 0.0                           # T = sum coef * S + const
+    observed: float = 0.0
+    n_strata: int = 0
+
+
+def _check(values, t, labels, estimand, statistic, direction):
+    values = np.asarray(values, dtype=float)
+    t = np.asarray(t)
+    labels = np.asarray(labels)
+    if values.ndim != 1 or t.shape != values.shape or labels.shape != values.shape:
+        raise InputError(f"`values`, `t` and `labels` must be 1-D of one length, got shapes {values.shape}, "
+                         f"{t.shape}, {labels.shape}")
+    if estimand not in ("ate", "att"):
+        raise InputError(f"`estimand` must be 'ate' or 'att', got {estimand!r}")
+    if statistic not in ("mean_difference", "sum"):
+        raise InputError(f"`statistic` must be 'mean_difference' or 'sum', got {statistic!r}; the bound is of "
+                         "the statistic the core test reported")
+    if direction not in ("greater", "less", "auto"):
+        raise InputError(f"`direction` must be 'greater', 'less' or 'auto', got {direction!r}")
+    if not np.isin(t, (0, 1)).all():
+        raise InputError("`t` must hold only 0 (reference) and 1 (exposed); recode the exposure")
+    if not np.issubdtype(labels.dtype, np.integer) or (labels < -1).any():
+        raise InputError("`labels` must be integer strata 0..S-1 with -1 for rows set aside")
+    keep = labels >= 0
+    if not np.isfinite(values[keep]).all():
+        raise InputError("`values` has missing or infinite entries among analysed rows; drop or impute them first")
+    if keep.sum() == 0:
+        raise InputError("`labels` sets every row aside (-1); nothing to bound")
+    return values[keep], t[keep].astype(np.int8), labels[keep].astype(np.int64)
+
+
+def _design(values, t, labels, estimand, statistic, sign):
+    """Per-stratum sorted values and the linear map from exposed sums S_s to the statistic."""
+    _, inv = np.unique(labels, return_inverse=True)
+    n_s = np.bincount(inv)
+    n1_s = np.bincount(inv, weights=t).astype(np.int64)
+    n0_s = n_s - n1_s
+    if statistic == "mean_difference" and ((n1_s == 0) | (n0_s == 0)).any():
+        bad = int(np.flatnonzero((n1_s == 0) | (n0_s == 0))[0])
+        raise InputError(f"`labels`: stratum {bad} lacks an exposed or a reference unit; the mean difference "
+                         "needs both groups in every stratum (set such rows aside with label -1)")
+    w = n_s / n_s.sum() if estimand == "ate" else n1_s / max(n1_s.sum(), 1)  # ATE n_s/n, ATT n1_s/n1
+    v = sign * values
+    S = np.bincount(inv, weights=v * t, minlength=len(n_s))
+    R = np.bincount(inv, weights=v, minlength=len(n_s))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if statistic == "mean_difference":
+            coef = w * (1.0 / n1_s + 1.0 / n0_s)  # T = sum w_s [S_s (1/n1s + 1/n0s) - R_s/n0s]
+            const_s = -w * R / n0_s
+        else:
+            coef = np.ones(len(n_s))
+            const_s = np.zeros(len(n_s))
+    d = _Design(n_strata=len(n_s))
+    d.observed = float(np.sum(coef * S + const_s))
+    both = (n1_s > 0) & (n0_s > 0)
+    # strata with one group only: their S_s is fixed by design
+    d.const = float(np.sum(const_s) + np.sum((coef * S)[~both]))
+    order = np.lexsort((v, inv))
+    v_sorted = v[order]
+    starts = np.concatenate(([0], np.cumsum(n_s)))
+    keys = {}
+    for s in np.flatnonzero(both):
+        keys.setdefault((int(n_s[s]), int(n1_s[s])), []).append(s)
+    for (n, n1), members in sorted(keys.items()):
+        V = np.stack([v_sorted[starts[s]:starts[s + 1]] for s in members])
+        d.groups.append((n, n1, V))
+        d.coef.append(coef[members])
+    return d
+
+
+def _bracket_p(d, gamma, cache=None):
+    """(separable p, conservative p, moments exact?) of the normal approximation at Gamma."""
+    mu_sep = var_sep = mu_max = var_max = var_min = 0.0
+    exact = True
+    for (n, n1, V), c in zip(d.groups, d.coef):
+        if gamma == 1.0:
+            m, v = _perm_moments(n, n1, V)
+            mu_sep += c @ m; var_sep += (c * c) @ v
+            mu_max += c @ m; var_max += (c * c) @ v; var_min += (c * c) @ v
+            continue
+        mu, var, var_hi, var_lo, ex = _cut_moments(n, n1, V, gamma, cache)
+        exact &= ex
+        best = mu.max(axis=1, keepdims=True)
+        tol = 1e-12 * np.maximum(np.abs(mu).max(axis=1, keepdims=True), 1.0)
+        v_at = np.where(mu >= best - tol, var, -np.inf).max(axis=1)  # ties -> larger variance (GKR 2000)
+        mu_sep += c @ best[:, 0]; var_sep += (c * c) @ v_at
+        mu_max += c @ best[:, 0]; var_max += (c * c) @ var_hi.max(axis=1); var_min += (c * c) @ var_lo.min(axis=1)
+    T = d.observed - d.const
+    p_sep = _normal_sf(T - mu_sep, var_sep)
+    diff = T - mu_max
+    p_con = _normal_sf(diff, var_max if diff >= 0 else var_min)
+    return p_sep, max(p_con, p_sep), exact
+
+
+
+# ----------------------------------------------------------------------------- binary exact
+class _Bounder:
+    """Callable p-value bound at one Gamma, prepared once for a data set."""
+
+    def __init__(self, values, t, labels, estimand, statistic, direction):
+        values, t, labels = _check(values, t, labels, estimand, statistic, direction)
+        self.statistic, self.estimand = statistic, estimand
+        if direction == "auto":
+            d = _design(values, t, labels, estimand, statistic, 1.0)
+            null_mean = sum(c @ _perm_moments(n, n1, V)[0] for (n, n1, V), c in zip(d.groups, d.coef))
+            direction = "greater" if d.observed - d.const >= null_mean else "less"
+        self.direction = direction
+        sign = 1.0 if direction == "greater" else -1.0
+        self.binary = statistic == "sum" and np.isin(values, (0.0, 1.0)).all()
+        self.design = _design(values, t, labels, estimand, statistic, sign)
+        self.moments = "exact"
+        self._cache = {}
+        if self.binary:
+            self.raw, self.count = _binary_setup(values, t, labels, sign)
+            self.method = "exact" if _convolution_cost(self.raw) <= EXACT_CONVOLUTION_BUDGET else "normal_binary"
+        else:
+            self.method = "bracket"
+
+    def __call__(self, gamma):
+        """(p_upper, p_separable) at Gamma."""
+        if self.method == "exact":
+            p = _binary_exact_p(self.raw, self.count, gamma)
+            return p, p
+        if self.method == "normal_binary":
+            p, ex = _binary_normal_p(self.raw, self.count, gamma, self._cache)
+            if not ex:
+                self.moments = "large-stratum approximation"
+            return p, p
+        p_sep, p_con, ex = _bracket_p(self.design, gamma, self._cache)
+        if not ex:
+            self.moments = "large-stratum approximation"
+        return p_con, p_sep
+
+
+def _check_gammas(gammas):
+    g = np.asarray(gammas, dtype=float).ravel()
+    if g.size == 0 or not np.isfinite(g).all() or (g < 1.0).any():
+        raise InputError(f"`gammas` must be finite values >= 1, got {list(np.asarray(gammas).ravel())[:5]}; "
+                         "pass e.g. --gamma-grid 1,1.5,2,3")
+    return sorted(set(g.tolist()))
+
+
+def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_difference", direction="greater",
+                 gammas=DEFAULT_GAMMAS) -> GammaBounds:
+    """Upper bounds on the one-sided p-value of the stratified test for each Gamma.
+
+    Parameters
+    ----------
+    values : (n,) float
+        The values the core test used: residuals from ``permutation.residualize`` for the
+        covariance-adjusted "mean_difference" statistic, the outcome itself for "sum".
+    t : (n,) int8
+        1 exposed, 0 reference.
+    labels : (n,) int64
+        Strata 0..S-1 (propensity strata, or user strata such as matched pairs); -1 ignored.
+    estimand : {"ate", "att"}, default "ate"
+        Stratum weights of the mean difference: ATE n_s/n, ATT n1_s/n1.
+    statistic : {"mean_difference", "sum"}, default "mean_difference"
+        T = sum_s w_s (mean exposed - mean reference), or the sum over exposed units.
+    direction : {"greater", "less", "auto"}, default "greater"
+        Tail bounded; "less" bounds P(T <= t) by applying the bound to -values; "auto" takes the
+        side of the observed effect.
+    gammas : sequence of float >= 1
+
+    Returns
+    -------
+    GammaBounds
+
+    Notes
+    -----
+    At Gamma = 1 the bracket equals the randomization normal p-value of the statistic, with
+    E S_s = n1s R_s / n_s and Var S_s = n1s n0s / (n_s (n_s - 1)) sum (v - vbar_s)^2; the
+    binary exact bound equals the exact permutation p-value (Fisher's exact test for one 2x2).
+
+    References
+    ----------
+    Rosenbaum PR (2002). Observational Studies, 2nd ed., ch. 4. Springer.
+    Gastwirth JL, Krieger AM, Rosenbaum PR (2000). Asymptotic separability in sensitivity
+    analysis. JRSS B 62:545-555.
+    Breslow NE, Day NE (1980). Statistical Methods in Cancer Research I, sec. 4.4 (large-stratum
+    moments of the noncentral hypergeometric; from memory). IARC, Lyon.
+    """
+    gammas = _check_gammas(gammas)
+    b = _Bounder(values, t, labels, estimand, statistic, direction)
+    p_up, p_sep = zip(*(b(g) for g in gammas))
+    return GammaBounds(gammas=list(gammas), p_upper=list(p_up), p_separable=list(p_sep), method=b.method,
+                       method_text=_METHOD_TEXT[b.method], statistic=statistic, direction=b.direction,
+                       estimand=estimand, observed=b.design.observed, n_strata=b.design.n_strata,
+                       moments=b.moments)
+
+
+def _root(f, alpha, cap):
+    """Gamma where f(Gamma) = alpha, by brentq on log Gamma; (gamma, flag)."""
+    p1 = f(1.0)
+    if p1 > alpha:
+        return 1.0, "not significant at Gamma=1"
+    if f(cap) < alpha:
+        return cap, "> cap"
+    if p1 == alpha:
+        return 1.0, "ok"
+    lg = optimize.brentq(lambda x: f(math.exp(x)) - alpha, 0.0, math.log(cap), xtol=1e-14, rtol=1e-14,
+                         maxiter=200)
+    gamma = math.exp(lg)
+    if abs(f(gamma) - alpha) > 1e-8:
+        # the separable end can jump when the maximizing vertex changes; the root is that jump
+        return gamma, "ok (the bound jumps across alpha at this Gamma)"
+    return gamma, "ok"
+
+
+def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_difference", direction="auto",
+                      alpha=0.05, two_sided=False, cap=GAMMA_CAP) -> SensitivityValue:
+    """The Gamma at which the one-sided p-value bound reaches alpha (root finding on log Gamma).
+
+    Parameters
+    ----------
+    values, t, labels, estimand, statistic, direction
+        As for :func:`gamma_bounds`; the default direction "auto" is the side of the observed effect.
+    alpha : float, default 0.05
+        Level. With ``two_sided=True`` (the core test was two-sided) each side uses alpha/2.
+    cap : float, default 1000
+        Largest Gamma searched; beyond it the result is flagged "> cap".
+
+    Returns
+    -------
+    SensitivityValue
+        `gamma` from the bound to quote, `gamma_separable` from the separable end; for a bracket
+        the true normal-approximation sensitivity value lies in [gamma, gamma_separable].
+
+    References
+    ----------
+    Rosenbaum PR (2002). Observational Studies, 2nd ed., ch. 4. Springer.
+    """
+    try:
+        alpha = float(alpha)
+        cap = float(cap)
+    except (TypeError, ValueError):
+        raise InputError(f"`alpha` and `cap` must be numbers, got {alpha!r}, {cap!r}") from None
+    if not 0.0 < alpha < 1.0:
+        raise InputError(f"`alpha` must be in (0, 1), got {alpha}; use e.g. --alpha 0.05")
+    if not (math.isfinite(cap) and cap > 1.0):
+        raise InputError(f"`cap` must be a finite number > 1, got {cap}")
+    level = alpha / 2.0 if two_sided else alpha
+    note = (f"one-sided bound at alpha/2 = {level:g} per side (the core test is two-sided)" if two_sided
+            else f"one-sided bound at alpha = {level:g}")
+    b = _Bounder(values, t, labels, estimand, statistic, direction)
+    g_up, flag_up = _root(lambda g: b(g)[0], level, cap)
+    g_sep, flag_sep = _root(lambda g: b(g)[1], level, cap)
+    return SensitivityValue(gamma=g_up, gamma_separable=g_sep, flag=flag_up, flag_separable=flag_sep,
+                            alpha=level, alpha_note=note, cap=cap, p_at_gamma=b(g_up)[0], method=b.method,
+                            statistic=statistic, direction=b.direction, estimand=estimand, moments=b.moments)
