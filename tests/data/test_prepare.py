@@ -65,10 +65,14 @@ def test_read_errors(tmp_path):
     dup.write_text("a,b,a\n1,2,3\n")
     with pytest.raises(InputError, match="duplicate column names.*'a'"):
         read_table(dup)
-    odd = tmp_path / "data.xlsx"
+    odd = tmp_path / "data.xlsx"  # a CSV under a workbook's name: say what it really is
     odd.write_text("a,b\n1,2\n")
-    with pytest.raises(InputError, match="unknown suffix '.xlsx'"):
+    with pytest.raises(InputError, match=r"named \.xlsx but its content is CSV/text.*\.csv"):
         read_table(odd)
+    unknown = tmp_path / "data.dat"
+    unknown.write_text("a,b\n1,2\n")
+    with pytest.raises(InputError, match="unknown suffix '.dat'"):
+        read_table(unknown)
     ragged = tmp_path / "ragged.csv"
     ragged.write_text("a,b\n1,2\n3,4,5,6\n")
     with pytest.raises(InputError, match="not a well-formed table"):

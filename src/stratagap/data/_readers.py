@@ -1,16 +1,23 @@
-"""Reading an input table from CSV, Parquet, Stata (.dta) or SAS transport (.xpt) files.
+"""Reading an input table from CSV, Parquet, Stata (.dta), SAS transport (.xpt), SPSS (.sav)
+or Excel (.xlsx) files.
 
 The reader is chosen by the file's suffix, and the first bytes of the file are checked against
 what that suffix promises (Parquet files start with ``PAR1``, Stata 13+ files with
-``<stata_dta>``, SAS transport files with a ``HEADER RECORD`` line), so that a CSV saved under a
+``<stata_dta>``, SAS transport files with a ``HEADER RECORD`` line, SPSS files with ``$FL2`` or
+``$FL3``, .xlsx workbooks are zip archives starting ``PK``), so that a CSV saved under a
 ``.parquet`` name gets a one-line message saying what the file really is instead of a parser
 traceback. Files are only ever opened for reading.
+
+A semicolon-separated file often writes decimals with a comma (``3,25``): such a column is read
+as numbers when every value in it is a decimal-comma number, and refused as ambiguous when only
+some are.
 """
 
 from __future__ import annotations
 
 import csv
 import io
+import re
 from collections import Counter
 from pathlib import Path
 
@@ -27,9 +34,22 @@ SUFFIXES = {
     ".parquet": "parquet", ".pq": "parquet",
     ".dta": "stata",
     ".xpt": "xport",
+    ".sav": "spss", ".zsav": "spss",
+    ".xlsx": "excel",
 }
-_LABELS = {"csv": "CSV/text", "parquet": "Parquet", "stata": "Stata .dta", "xport": "SAS transport (.xpt)"}
-_SUGGESTED_SUFFIX = {"csv": ".csv", "parquet": ".parquet", "stata": ".dta", "xport": ".xpt"}
+_LABELS = {"csv": "CSV/text", "parquet": "Parquet", "stata": "Stata .dta",
+           "xport": "SAS transport (.xpt)", "spss": "SPSS .sav", "excel": "Excel .xlsx"}
+_SUGGESTED_SUFFIX = {"csv": ".csv", "parquet": ".parquet", "stata": ".dta", "xport": ".xpt",
+                              "spss": ".sav", "excel": ".xlsx"}
+#: Formats we recognise but do not read, with what to do instead.
+_UNREAD = {".xls": "an old Excel workbook (.xls); save it as CSV (or as .xlsx)",
+           ".xlsm": "an Excel workbook with macros; save the sheet as CSV (or as .xlsx)",
+           ".ods": "an OpenDocument spreadsheet; save the sheet as CSV",
+           ".sas7bdat": "a SAS data set; export it as SAS transport (.xpt) or CSV",
+           ".rds": "an R data file; write it out with write.csv or arrow::write_parquet",
+           ".json": "a JSON file; save the table as CSV or Parquet"}
+#: A number written with a decimal comma (no thousands separators): 3,25  -0,5  12  1,5e-3
+_DECIMAL_COMMA = re.compile(r"^\s*[+-]?(\d+(,\d*)?|,\d+)([eE][+-]?\d+)?\s*$")
 _DELIMITERS = (",", ";", "\t")
 _SNIFF_BYTES = 64 * 1024
 _IBM_ZERO = 16.0 ** -65  # what pandas returns for an IBM-float zero
@@ -71,6 +91,8 @@ def read_table(path, *, encoding: str | None = None) -> pd.DataFrame:
     if p.stat().st_size == 0:
         raise InputError(f"input file '{p}' is empty (0 bytes); export the data again")
     fmt = SUFFIXES.get(p.suffix.lower())
+    if fmt is None and p.suffix.lower() in _UNREAD:
+        raise InputError(f"input file '{p}' is {_UNREAD[p.suffix.lower()]}")
     if fmt is None:
         raise InputError(
             f"input file '{p}' has unknown suffix '{p.suffix}'; supported: "
@@ -86,7 +108,8 @@ def read_table(path, *, encoding: str | None = None) -> pd.DataFrame:
         raise InputError(
             f"input file '{p}' is named {p.suffix} but does not look like a {_LABELS[fmt]} file; "
             "check that it was exported correctly")
-    reader = {"csv": _read_csv, "parquet": _read_parquet, "stata": _read_stata, "xport": _read_xport}[fmt]
+    reader = {"csv": _read_csv, "parquet": _read_parquet, "stata": _read_stata,
+              "xport": _read_xport, "spss": _read_spss, "excel": _read_excel}[fmt]
     table = reader(p, encoding)
     if table.shape[1] == 0:
         raise InputError(f"input file '{p}' has no columns; export the data again with a header row")
@@ -104,6 +127,10 @@ def _sniff(head: bytes) -> str | None:
         return "stata"
     if head.startswith(b"HEADER RECORD*******LIB") or head.startswith(b"HEADER RECORD*******LIBV8"):
         return "xport"
+    if head.startswith((b"$FL2", b"$FL3")):
+        return "spss"
+    if head.startswith(b"PK\x03\x04"):  # a zip archive: .xlsx workbooks are one
+        return "excel"
     # Stata 104-115 binary files: a release byte then a byte-order byte (1 = MSF, 2 = LSF).
     if len(head) > 2 and 104 <= head[0] <= 115 and head[1] in (1, 2) and b"\x00" in head[:200]:
         return "stata"
@@ -156,6 +183,66 @@ def _read_csv(p: Path, encoding: str | None) -> pd.DataFrame:
         msg = str(err).strip().splitlines()[-1]
         raise InputError(f"input file '{p}' is not a well-formed table ({msg}); "
                          "check the delimiter and quoting of that line") from None
+    table.columns = [str(c).strip() for c in table.columns]
+    if delim == ";":
+        table = _decimal_commas(p, table)
+    return table
+
+
+def _decimal_commas(p: Path, table: pd.DataFrame) -> pd.DataFrame:
+    """Read text columns of decimal-comma numbers as numbers; refuse a column that mixes them."""
+    out = table.copy()
+    for col in table.columns:
+        values = table[col]
+        if not (pd.api.types.is_object_dtype(values) or pd.api.types.is_string_dtype(values)):
+            continue
+        present = values.dropna().astype(str)
+        present = present[present.str.strip() != ""]
+        matches = present.str.match(_DECIMAL_COMMA)
+        if not matches.any() or not present.str.contains(",").any():
+            continue
+        if not matches.all():
+            odd = present[~matches].iloc[0]
+            raise InputError(
+                f"input file '{p}' column {col!r} mixes decimal-comma numbers with other values "
+                f"(e.g. {odd!r}), so it is ambiguous; fix that value or save the file with a "
+                "decimal point")
+        numbers = values.where(values.isna(), values.astype(str).str.strip().str.replace(",", ".", regex=False))
+        out[col] = pd.to_numeric(numbers.replace("", np.nan))
+    return out
+
+
+def _read_spss(p: Path, encoding: str | None) -> pd.DataFrame:
+    try:
+        import pyreadstat
+    except ImportError:  # pragma: no cover - a dependency of the package
+        raise InputError(f"input file '{p}' is SPSS, which needs the pyreadstat package; "
+                         "install it, or save the data as CSV") from None
+    try:
+        table, _ = pyreadstat.read_sav(str(p), encoding=encoding, apply_value_formats=True)
+    except Exception as err:
+        raise InputError(f"input file '{p}' could not be read as SPSS .sav ({_first_line(err)}); "
+                         "save it again from SPSS or as CSV") from None
+    return table
+
+
+def _read_excel(p: Path, encoding: str | None) -> pd.DataFrame:
+    try:
+        import openpyxl  # noqa: F401  (the reader pandas uses for .xlsx)
+    except ImportError:  # pragma: no cover - a dependency of the package
+        raise InputError(f"input file '{p}' is an Excel workbook, which needs the openpyxl "
+                         "package; install it, or save the sheet as CSV") from None
+    try:
+        sheets = pd.read_excel(p, sheet_name=None, engine="openpyxl")
+    except Exception as err:
+        raise InputError(f"input file '{p}' could not be read as Excel .xlsx ({_first_line(err)}); "
+                         "save the sheet as CSV") from None
+    filled = {name: sheet for name, sheet in sheets.items() if sheet.shape[1] > 0}
+    if len(filled) > 1:
+        raise InputError(f"input file '{p}' has {len(filled)} sheets with data "
+                         f"({', '.join(map(repr, filled))}); save the sheet to analyse as CSV, "
+                         "or keep only that sheet in the workbook")
+    table = next(iter(filled.values()), next(iter(sheets.values())))
     table.columns = [str(c).strip() for c in table.columns]
     return table
 
