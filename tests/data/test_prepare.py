@@ -570,3 +570,23 @@ def test_observed_weights_separation_falls_back_with_warning():
         w = observed_weights(x[:, None], rng.integers(0, 2, 200), observed)
     assert np.all(np.isfinite(w)) and np.all(w[observed] >= 1.0) and np.all(w[~observed] == 0)
     assert np.array_equal(observed_weights(x[:, None], np.zeros(200), np.ones(200, bool)), np.ones(200))
+
+
+def test_identifier_like_numbers_warn():
+    """Integer, unique per row, and monotone in the file's order or named like an identifier."""
+    rng = np.random.default_rng(3)
+    df = invented()
+    n = len(df)
+    gaps = np.cumsum(rng.integers(1, 40, size=n)) + 21000  # survey record numbers with gaps
+    cases = {"serial": gaps,  # monotone in file order, not consecutive
+             "seqn": rng.permutation(gaps),  # shuffled, but named like one
+             "ticket": np.arange(n) * 3 + 7}  # evenly spaced: monotone in file order
+    for name, values in cases.items():
+        frame = df.assign(**{name: values})
+        with pytest.warns(DataWarning, match=f"'{name}' looks like a row identifier"):
+            prepare(frame, exposure="shift", outcome="sbp", covariates=["age", name])
+    # a real measurement: integer-valued, unique, but neither ordered nor named like an id
+    frame = df.assign(income=rng.permutation(gaps))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", DataWarning)
+        prepare(frame, exposure="shift", outcome="sbp", covariates=["age", "income"])

@@ -174,12 +174,10 @@ def build(frame: pd.DataFrame, covariates, formula, t) -> Design:
                 and (k == n or (k > 50 and k > 0.5 * n))):
             raise InputError(f"`--covariates` column '{c}' looks like an identifier ({k} distinct values in {n} rows); "
                              "remove it from the covariates (or group it into a few categories)")
-        if not is_categorical(s) and k == n >= 20:
-            v = np.sort(pd.to_numeric(s, errors="coerce").to_numpy(dtype=float))
-            if np.all(np.diff(v) == 1):  # distinct consecutive integers: a record number
-                warnings.warn(f"covariate '{c}' looks like a row identifier ({k} distinct consecutive "
-                              f"integers in {n} rows); remove it unless it is a real measurement",
-                              DataWarning, stacklevel=3)
+        why = _identifier_reason(c, s, frame.get("__row__"))
+        if why:
+            warnings.warn(f"covariate '{c}' looks like a row identifier ({why}); remove it "
+                          "unless it is a real measurement", DataWarning, stacklevel=3)
         kept.append(c)
     if not kept:
         raise InputError("no covariates are left after dropping constant ones "
@@ -274,6 +272,36 @@ def _formula_design(frame, formula):
             names.append(name)
     X = np.column_stack(cols) if cols else np.empty((len(frame), 0))
     return X, names, terms
+
+
+#: Column names that usually hold record numbers (common practice; matched whole, any case).
+_ID_NAME = re.compile(r"(?i)(.*[_ .])?(id|ids|pid|patid|subjid|studyid|seqn|seqno|recno|record|"
+                      r"rowid|row|index|idx)([_ .]?(no|num|number))?")
+
+
+def _identifier_reason(name, s: pd.Series, original_row) -> str | None:
+    """Why a numeric covariate looks like a record number, or None.
+
+    Integer-valued and unique per row, and either consecutive once sorted, monotone in the
+    file's original row order (``original_row``: each analysed row's position in the input), or
+    named like an identifier (id, seqn, patient_id, ...).
+    """
+    if is_categorical(s) or len(s) < 20:
+        return None
+    v = pd.to_numeric(s, errors="coerce").to_numpy(dtype=float)
+    if not np.isfinite(v).all() or np.any(v != np.round(v)) or np.unique(v).size != v.size:
+        return None
+    n = v.size
+    if np.all(np.diff(np.sort(v)) == 1):
+        return f"{n} distinct consecutive integers in {n} rows"
+    if original_row is not None:
+        in_file_order = v[np.argsort(np.asarray(original_row), kind="stable")]
+        steps = np.diff(in_file_order)
+        if np.all(steps > 0) or np.all(steps < 0):
+            return f"{n} distinct integers in {n} rows, monotone in the file's row order"
+    if _ID_NAME.fullmatch(str(name)):
+        return f"{n} distinct integers in {n} rows, and named like an identifier"
+    return None
 
 
 def independent_columns(X, tol: float = 1e-6):
