@@ -263,11 +263,47 @@ def test_gamma_curve_marks_the_sensitivity_value():
     assert fig.axes[0].get_yscale() == "log"
 
 
+def _figure_texts(fig):
+    from matplotlib.table import Table
+    texts = [t.get_text() for ax in fig.axes for t in ax.texts]
+    for ax in fig.axes:
+        for table in (c for c in ax.get_children() if isinstance(c, Table)):
+            texts += [cell.get_text().get_text() for cell in table.get_celld().values()]
+    return texts
+
+
 def test_tipping_labels_benchmarks_by_their_own_names():
     fig = plot_tipping(handmade())
-    texts = [t.get_text() for t in fig.axes[0].texts]
+    texts = _figure_texts(fig)
     assert "age (above median)" in texts and "role[b]" in texts
     assert not any(re.search(r"\d\s*[x×]", t) for t in texts)  # no "2x" multiples
+
+
+def test_tipping_figure_draws_the_curve_and_signed_reference_points():
+    """The curve is the result's own; reference covariates sit at their signed values."""
+    view = handmade()
+    view.data["sensitivity"]["tipping"]["benchmarks"][1]["prevalence_gap"] = -0.1
+    fig = plot_tipping(view)
+    ax = fig.axes[0]
+    curve = [ln for ln in ax.get_lines() if len(ln.get_xdata()) == 3]
+    np.testing.assert_allclose(curve[0].get_xdata(), [0.1, 0.2, 0.4])
+    np.testing.assert_allclose(curve[0].get_ydata(), [0.43 / g for g in (0.1, 0.2, 0.4)])
+    points = {tuple(np.ravel(ln.get_xydata())) for ln in ax.get_lines() if len(ln.get_xdata()) == 1
+              and ln.get_marker() == "D"}
+    assert (0.2, 1.5) in points and (-0.1, 0.5) in points  # signed, not absolute values
+    assert "-0.100" in _figure_texts(fig)  # and the side table shows the same sign
+    assert not [c for c in ax.collections if c.__class__.__name__ == "QuadContourSet"]
+
+
+def test_gamma_figure_keeps_the_level_line_when_not_significant():
+    view = handmade()
+    sens = view.data["sensitivity"]
+    sens["gamma_curve"] = [{"gamma": g, "p_upper": p, "p_separable": p} for g, p in
+                           [(1.0, 0.4), (2.0, 0.7), (3.0, 0.9)]]
+    sens["gamma_threshold_detail"]["flag"] = "not significant at Gamma=1"
+    ax = plot_gamma_curve(view).axes[0]
+    low, high = ax.get_ylim()
+    assert low < sens["gamma_level"] < high
 
 
 def test_balance_rows_sorted_and_flag_line():
@@ -586,3 +622,15 @@ def test_same_result_same_bytes(handmade_html):
     view = handmade()
     assert render_html(view) == handmade_html[0]
     assert figure_bytes(plot_tipping(view), "svg") == figure_bytes(plot_tipping(handmade()), "svg")
+
+
+def test_overlap_gives_each_group_its_own_scale():
+    """A small exposed group next to a large reference group: each panel fits its own bars."""
+    view = handmade()
+    fig = plot_overlap(view)
+    top, bottom = fig.axes[0], fig.axes[1]
+    for ax in (top, bottom):
+        heights = [abs(y) for p in ax.patches for y in np.ravel(p.get_path().vertices[:, 1])]
+        assert max(heights) <= max(abs(v) for v in ax.get_ylim()) <= max(heights) * 1.1
+    assert bottom.yaxis_inverted() and not top.yaxis_inverted()
+    assert not top.texts and not bottom.texts  # labels live in the legend, not on the bars

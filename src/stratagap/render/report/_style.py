@@ -2,8 +2,7 @@
 
 Palette: Paul Tol's "vibrant" qualitative scheme, designed to stay distinguishable under the
 common forms of colour-vision deficiency (Tol 2021, *Colour schemes*, SRON technical note
-SRON/EPS/TN/09-002, fig. 2), and his diverging "sunset" scheme for the tipping-point surface
-(same note, fig. 18). Figures are built on :class:`matplotlib.figure.Figure` directly (no
+SRON/EPS/TN/09-002, fig. 2). Figures are built on :class:`matplotlib.figure.Figure` directly (no
 pyplot state), rendered with the Agg canvas, and never recompute a statistic: everything they
 show comes from the result.
 
@@ -20,13 +19,12 @@ from contextlib import contextmanager
 from dataclasses import dataclass, field
 
 import matplotlib
-import matplotlib.colors as mcolors
 # Figures get the Agg canvas directly, so nothing here needs a display or touches the global
 # pyplot backend (a notebook's inline backend stays as the user set it).
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
-__all__ = ["PALETTE", "EXPOSED", "REFERENCE", "ACCENT", "ALERT", "NEUTRAL", "INK", "SUNSET",
+__all__ = ["PALETTE", "EXPOSED", "REFERENCE", "ACCENT", "ALERT", "NEUTRAL", "INK",
            "new_figure", "figure_bytes", "plain", "ResultView", "view_of", "style"]
 
 #: Tol (2021) "vibrant" scheme.
@@ -39,11 +37,6 @@ ALERT = PALETTE["magenta"]
 NEUTRAL = PALETTE["grey"]
 INK = "#2B2B2B"
 MUTED = "#6B6B6B"
-
-#: Tol (2021) "sunset" diverging scheme, centre = the null.
-SUNSET = mcolors.LinearSegmentedColormap.from_list("stratagap_sunset", [
-    "#364B9A", "#4A7BB7", "#6EA6CD", "#98CAE1", "#C2E4EF", "#EAECCC", "#FEDA8B", "#FDB366",
-    "#F67E4B", "#DD3D2D", "#A50026"])
 
 _RC = {
     "font.family": "DejaVu Sans",  # ships with matplotlib: identical output everywhere

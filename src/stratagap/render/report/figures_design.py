@@ -25,11 +25,13 @@ def _group_names(data: dict) -> tuple[str, str]:
 
 
 def plot_overlap(result, *, bins: int = 40) -> Figure:
-    """Figure 1: mirrored score distributions of the two groups, with the trimming bounds.
+    """Figure 1: each group's score distribution on its own axis, with the trimming bounds.
 
-    The exposed group is drawn above the axis and the reference group below it, each as the
-    share of its own group per bin so that unequal group sizes do not hide the tails. Units set
-    aside by the overlap rule are the hatched part of each bar.
+    The exposed group is drawn in the upper panel and the reference group in the lower one,
+    mirrored, each as the share of its own group per bin and each on its own vertical scale, so
+    that a small group (185 exposed among 16,000) stays readable beside a large one. Units set
+    aside by the overlap rule are the hatched part of each bar. Labels sit in the legend under
+    the panels, never on the bars.
 
     Parameters
     ----------
@@ -47,52 +49,63 @@ def plot_overlap(result, *, bins: int = 40) -> Figure:
     ov = v.data.get("overlap", {}) or {}
     exposed_name, reference_name = _group_names(v.data)
     auc = (v.data.get("propensity") or {}).get("auc")
-    sub = f"share of each group per score bin; c-statistic {auc:.3f}" if auc is not None else \
-        "share of each group per score bin"
-    fig, ax = new_figure("Where the two groups' propensity scores lie", sub)
+    sub = "share of each group per score bin, each group on its own scale" + (
+        f"; c-statistic {auc:.3f}" if auc is not None else "")
+    fig, axes = new_figure("Where the two groups' propensity scores lie", sub, size=(7.2, 4.8),
+                           nrows=2, sharex=True)
+    top, bottom = axes[0, 0], axes[1, 0]
     if len(score) == 0:
-        ax.text(0.5, 0.5, "no scores recorded on this result", ha="center", transform=ax.transAxes)
+        top.text(0.5, 0.5, "no scores recorded on this result", ha="center",
+                 transform=top.transAxes)
         return fig
     lo, hi = float(np.nanmin(score)), float(np.nanmax(score))
     pad = max((hi - lo) * 0.02, 1e-6)
     edges = np.linspace(max(0.0, lo - pad), min(1.0, hi + pad), bins + 1)
-    for group, sign, colour, name in ((1, 1, EXPOSED, exposed_name), (0, -1, REFERENCE, reference_name)):
+    for ax, group, colour, name in ((top, 1, EXPOSED, exposed_name),
+                                    (bottom, 0, REFERENCE, reference_name)):
         members = t == group
         n = max(int(members.sum()), 1)
         kept, _ = np.histogram(score[members & keep], bins=edges)
         aside, _ = np.histogram(score[members & ~keep], bins=edges)
-        ax.stairs(sign * kept / n, edges, fill=True, color=colour, alpha=0.85,
+        ax.stairs(kept / n, edges, fill=True, color=colour, alpha=0.85,
                   label=f"{name}, n = {int(members.sum()):,}")
         if aside.any():
-            ax.stairs(sign * (kept + aside) / n, edges, baseline=sign * kept / n, fill=True,
+            ax.stairs((kept + aside) / n, edges, baseline=kept / n, fill=True,
                       facecolor="white", edgecolor=colour, hatch="////", linewidth=0.6,
                       label=f"{name}: set aside ({int(aside.sum()):,})")
-    ax.axhline(0, color=INK, linewidth=0.8)
+        height = float(((kept + aside) / n).max()) or 1.0
+        ax.set_ylim(0, height * 1.08)
+        ax.yaxis.set_major_formatter(_share_format)
+        ax.set_ylabel("exposed" if group == 1 else "reference", color=colour)
+    bottom.invert_yaxis()  # mirrored: the reference group hangs below the shared score axis
     bounds = ov.get("bounds")
+    for ax in (top, bottom):
+        if bounds:
+            for b in bounds:
+                ax.axvline(b, color=ALERT, linestyle=(0, (5, 2)), linewidth=1.4)
+            ax.axvspan(bounds[0], bounds[1], color=ACCENT, alpha=0.07, zorder=0)
+        elif ov.get("common_support"):
+            for b in ov["common_support"]:
+                ax.axvline(b, color=MUTED, linestyle=(0, (1, 1.5)), linewidth=1.2)
     if bounds:
-        for b in bounds:
-            ax.axvline(b, color=ALERT, linestyle=(0, (5, 2)), linewidth=1.4)
-        ax.axvspan(bounds[0], bounds[1], color=ACCENT, alpha=0.07, zorder=0,
-                   label=f"kept by the rule '{ov.get('rule', '')}': {bounds[0]:.3f} to {bounds[1]:.3f}")
+        top.plot([], [], color=ALERT, linestyle=(0, (5, 2)),
+                 label=f"kept by the rule '{ov.get('rule', '')}': {bounds[0]:.3f} to {bounds[1]:.3f}")
     elif ov.get("common_support"):
         cs = ov["common_support"]
-        for b in cs:
-            ax.axvline(b, color=MUTED, linestyle=(0, (1, 1.5)), linewidth=1.2)
-        ax.plot([], [], color=MUTED, linestyle=(0, (1, 1.5)),
-                label=f"common support {cs[0]:.3f} to {cs[1]:.3f} (no trimming)")
-    top = ax.get_ylim()
-    lim = max(abs(top[0]), abs(top[1]))
-    ax.set_ylim(-lim * 1.05, lim * 1.25)
-    ax.set_yticks(ax.get_yticks())
-    ax.set_yticklabels([f"{abs(y):.0%}" for y in ax.get_yticks()])
-    ax.set_ylim(-lim * 1.05, lim * 1.25)
-    ax.text(0.005, 0.97, "exposed ↑", transform=ax.transAxes, va="top", color=EXPOSED, fontsize=8.5)
-    ax.text(0.005, 0.03, "reference ↓", transform=ax.transAxes, va="bottom", color=REFERENCE,
-            fontsize=8.5)
-    ax.set_xlabel("propensity score (estimated probability of exposure)")
-    ax.set_ylabel("share of group")
-    ax.legend(loc="upper right", fontsize=7.5)
+        top.plot([], [], color=MUTED, linestyle=(0, (1, 1.5)),
+                 label=f"common support {cs[0]:.3f} to {cs[1]:.3f} (no trimming)")
+    bottom.set_xlabel("propensity score (estimated probability of exposure)")
+    handles, labels = [], []
+    for ax in (top, bottom):
+        h, lab = ax.get_legend_handles_labels()
+        handles += h
+        labels += lab
+    fig.legend(handles, labels, loc="outside lower center", ncols=2, fontsize=7.5)
     return fig
+
+
+def _share_format(value, _position=None) -> str:
+    return f"{abs(value):.0%}" if abs(value) >= 0.1 or value == 0 else f"{abs(value):.1%}"
 
 
 def _balance_label(row: dict) -> str:

@@ -1,20 +1,19 @@
-"""Sensitivity figures: the Γ curve (figure 5) and the tipping-point surface (figure 6).
+"""Sensitivity figures: the Γ curve (figure 5) and the tipping curve (figure 6).
 
 Figure 5 draws the result's upper bounds on the one-sided p-value over Γ (Rosenbaum 2002,
 ch. 4; for the covariance-adjusted statistic the bracket between the separable value of
 Gastwirth, Krieger & Rosenbaum 2000 and the conservative end), the one-sided level and the
-sensitivity value found by root-finding. Figure 6 draws the bias-corrected estimates of Lin,
-Psaty & Kronmal (1998) over the grid of a binary unmeasured confounder, the result's tipping
-curve, and the measured covariates placed on the grid for scale, each under its own name.
+sensitivity value found by root-finding. Figure 6 draws the result's tipping curve for a
+binary unmeasured confounder (Lin, Psaty & Kronmal 1998) and the measured covariates as
+numbered reference points, with a side table of their names and signed values.
 """
 
 from __future__ import annotations
 
-import matplotlib.colors as mcolors
 import numpy as np
 from matplotlib.figure import Figure
 
-from ._style import ACCENT, ALERT, INK, MUTED, REFERENCE, SUNSET, new_figure, plain, view_of
+from ._style import ACCENT, ALERT, INK, MUTED, REFERENCE, new_figure, plain, view_of
 from .figures_inference import null_value
 
 __all__ = ["plot_gamma_curve", "plot_tipping"]
@@ -71,7 +70,8 @@ def plot_gamma_curve(result) -> Figure:
     elif flag != "ok":
         ax.text(0.98, 0.04, f"sensitivity value: {flag}", transform=ax.transAxes, ha="right",
                 color=INK, fontsize=8.5)
-    ax.set_ylim(max(_FLOOR / 3, np.nanmin(np.concatenate([up, sep])) / 3), 1.6)
+    lowest = np.nanmin(np.concatenate([up, sep, [level or 1.0]]))  # keep the level line in view
+    ax.set_ylim(max(_FLOOR / 3, lowest / 3), 1.6)
     ax.set_xlabel("Γ  (1 = no hidden bias)")
     ax.set_ylabel("p-value bound (log scale)")
     ax.legend(loc="lower right", fontsize=7.5)
@@ -79,11 +79,14 @@ def plot_gamma_curve(result) -> Figure:
 
 
 def plot_tipping(result) -> Figure:
-    """Figure 6: bias-corrected estimate over (prevalence gap, outcome effect) of a binary U.
+    """Figure 6: how strong an unmeasured binary confounder U would have to be.
 
-    The colour is the corrected estimate (diverging at the null value); the solid line is where
-    the corrected estimate reaches the null, the dashed line where its confidence limit closer
-    to the null does (the result's tipping curve). Measured covariates are placed for scale.
+    Left: the result's tipping curve (Lin, Psaty & Kronmal 1998): for each prevalence gap of U
+    between the groups, the effect of U on the outcome at which the corrected confidence limit
+    closer to the null reaches the null; beyond the curve (shaded) the corrected interval
+    includes the null. The measured covariates, as reference covariates, are numbered markers at
+    their signed gap and effect; a side table gives their names and values, signed as in the
+    report's table. Nothing is recomputed: the curve and the points come from the result.
 
     Returns
     -------
@@ -91,62 +94,77 @@ def plot_tipping(result) -> Figure:
     """
     v = view_of(result)
     tip = (v.data.get("sensitivity") or {}).get("tipping") or {}
-    fig, ax = new_figure("Tipping point: an unmeasured binary confounder U",
-                         "colour: estimate corrected for U (Lin, Psaty & Kronmal 1998); "
-                         "points: measured covariates",
-                         size=(7.2, 4.8))
-    gx = np.asarray(tip.get("prevalence_gap") or [], dtype=float)
-    gy = np.asarray(tip.get("outcome_shift") or [], dtype=float)
-    est = np.asarray([np.nan if e is None else e for e in tip.get("corrected_estimate") or []],
-                     dtype=float)
-    if len(gx) < 4 or len(gx) != len(gy) or len(est) != len(gx):
-        ax.text(0.5, 0.5, "no tipping-point grid on this result", ha="center",
-                transform=ax.transAxes, color=MUTED)
-        return fig
     measure = tip.get("measure", "difference")
     nv = null_value(measure)
-    ok = np.isfinite(est)
-    span = float(np.nanmax(np.abs(est[ok] - nv))) or 1.0
-    norm = mcolors.Normalize(nv - span, nv + span)
-    filled = ax.tricontourf(gx[ok], gy[ok], est[ok], levels=14, cmap=SUNSET, norm=norm)
-    bar = fig.colorbar(filled, ax=ax, shrink=0.9, pad=0.01)
-    bar.set_label(f"corrected estimate ({measure}); null = {nv:g}")
-    if est[ok].min() < nv < est[ok].max():
-        ax.tricontour(gx[ok], gy[ok], est[ok], levels=[nv], colors=[INK], linewidths=1.8)
-        ax.plot([], [], color=INK, linewidth=1.8, label="corrected estimate = null")
-    curve = [c for c in tip.get("tipping_curve") or [] if c.get("outcome_shift") is not None]
-    ymax, xmax = float(gy.max()), float(gx.max())
-    if curve:
-        cx = np.array([c["prevalence_gap"] for c in curve], dtype=float)
-        cy = np.array([c["outcome_shift"] for c in curve], dtype=float)
-        ax.plot(cx, cy, color=INK, linestyle=(0, (4, 2)), linewidth=1.6,
-                label="corrected CI limit reaches the null")
-    points = []
+    ratio = measure != "difference"
+    fig, axes = new_figure("How strong would an unmeasured confounder have to be?",
+                           "line: a binary U just strong enough for the corrected CI limit to "
+                           "reach the null (Lin, Psaty & Kronmal 1998); shaded: stronger",
+                           size=(8.4, 4.4), ncols=2, width_ratios=[1.55, 1])
+    ax, side = axes[0, 0], axes[0, 1]
+    side.axis("off")
+    curve = [c for c in tip.get("tipping_curve") or []
+             if c.get("outcome_shift") is not None and c.get("prevalence_gap") is not None]
+    if not curve:
+        ax.text(0.5, 0.5, "no tipping curve on this result", ha="center",
+                transform=ax.transAxes, color=MUTED)
+        return fig
+    cx = np.array([c["prevalence_gap"] for c in curve], dtype=float)
+    cy = np.array([c["outcome_shift"] for c in curve], dtype=float)
+    order = np.argsort(cx)
+    cx, cy = cx[order], cy[order]
+    refs = []
     for m in tip.get("benchmarks") or []:
         x, y = m.get("prevalence_gap"), m.get("outcome_shift")
         if x is None or y is None:
             continue
-        x, y = abs(float(x)), abs(float(y)) if measure == "difference" else float(y)
-        xmax, ymax = max(xmax, x * 1.1), max(ymax, y * 1.1)
-        points.append((x, y, plain(m.get("name", "")), bool(m.get("ci_includes_null"))))
-    ax.set_xlim(min(float(gx.min()), 0.0), xmax)
-    ax.set_ylim(min(float(gy.min()), 0.0), ymax)
-    placed = []  # label anchors in axes fractions, to step labels of nearby points apart
-    for x, y, name, crosses in sorted(points, key=lambda p: (p[1], p[0])):
-        ax.plot([x], [y], marker="o", markersize=6.5, linestyle="none", zorder=4,
-                markerfacecolor=ALERT if crosses else "white", markeredgecolor=INK)
+        refs.append((float(x), float(y), plain(m.get("name", "")), bool(m.get("ci_includes_null"))))
+    xs = np.concatenate([cx, [r[0] for r in refs]])
+    ys = np.concatenate([cy, [r[1] for r in refs]])
+    x_lo, x_hi = min(0.0, float(xs.min()) * 1.1), max(float(xs.max()) * 1.1, 0.05)
+    y_lo = min(nv, float(ys.min())) if ratio else min(0.0, float(ys.min()) * 1.1)
+    y_hi = float(ys.max()) * 1.15 if float(ys.max()) > 0 else 1.0
+    # the stronger side of the curve: larger outcome effect at the same gap
+    ax.fill_between(cx, cy, y_hi, color=ACCENT, alpha=0.14, linewidth=0,
+                    label="corrected CI includes the null")
+    ax.plot(cx, cy, color=ACCENT, linewidth=2.2, label="tipping curve")
+    ax.axhline(nv, color=MUTED, linewidth=0.8)
+    ax.axvline(0.0, color=MUTED, linewidth=0.8)
+    ax.set_xlim(x_lo, x_hi)
+    ax.set_ylim(y_lo, y_hi)
+    placed = []  # label anchors in axes fractions: step the numbers of nearby points apart
+    for k, (x, y, name, tips) in enumerate(refs, start=1):
+        ax.plot([x], [y], marker="D", markersize=6, linestyle="none", zorder=4,
+                markerfacecolor=ALERT if tips else REFERENCE, markeredgecolor="white")
         fx, fy = ax.transLimits.transform((x, y))
-        lift = sum(1 for px, py in placed if abs(px - fx) < 0.12 and abs(py - fy) < 0.05)
-        placed.append((fx, fy + 0.045 * lift))
-        ax.annotate(name, xy=(x, y), xytext=(5, 4 + 11 * lift), textcoords="offset points",
-                    fontsize=8, color=INK, zorder=5,
-                    arrowprops={"arrowstyle": "-", "color": MUTED, "lw": 0.6} if lift else None,
-                    bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": "none", "alpha": 0.8})
-    if points:
-        ax.plot([], [], marker="o", linestyle="none", markerfacecolor="white",
-                markeredgecolor=INK, label="measured covariate (filled: would tip the CI)")
+        near = sum(1 for px, py in placed if abs(px - fx) < 0.05 and abs(py - fy) < 0.05)
+        placed.append((fx, fy))
+        ax.annotate(str(k), xy=(x, y), xytext=(6 + 9 * near, 2 - 9 * near),
+                    textcoords="offset points", fontsize=8, color=INK, zorder=5)
+    if refs:
+        ax.plot([], [], marker="D", linestyle="none", markerfacecolor=REFERENCE,
+                markeredgecolor="white", label="reference covariate")
+        ax.plot([], [], marker="D", linestyle="none", markerfacecolor=ALERT,
+                markeredgecolor="white", label="reference covariate that would tip the CI")
     ax.set_xlabel("prevalence gap of U: p(U=1 | exposed) − p(U=1 | reference)")
-    ax.set_ylabel("effect of U on the outcome" + (" (mean shift)" if measure == "difference"
-                                                   else " (risk ratio)"))
-    ax.legend(loc="upper right", fontsize=7.5, framealpha=0.85, frameon=True)
+    ax.set_ylabel("effect of U on the outcome, " + ("risk ratio (null = 1)" if ratio
+                                                      else "mean shift (null = 0)"))
+    ax.legend(loc="upper right", fontsize=7.5, framealpha=0.9, frameon=True)
+    if refs:
+        rows = [[str(k), name if len(name) <= 26 else name[:25] + "…", f"{x:+.3f}",
+                 f"{y:.2f}" if ratio else f"{y:+.2f}", "yes" if tips else "no"]
+                for k, (x, y, name, tips) in enumerate(refs, start=1)]
+        table = side.table(cellText=rows, colLabels=["#", "reference covariate", "gap",
+                                                     "effect", "tips CI"],
+                           cellLoc="left", colLoc="left", colWidths=[0.08, 0.46, 0.17, 0.15, 0.14],
+                           bbox=[0.0, max(0.0, 0.92 - 0.075 * (len(rows) + 1)), 0.97,
+                                 min(0.92, 0.075 * (len(rows) + 1))])
+        table.auto_set_font_size(False)
+        table.set_fontsize(7.5)
+        for (row, _), cell in table.get_celld().items():
+            cell.set_edgecolor("#E4E0D8")
+            cell.set_text_props(color=INK, fontweight="bold" if row == 0 else "normal")
+        side.set_title("reference covariates (signed values)", loc="left", fontsize=8)
+    else:
+        side.text(0.0, 0.9, "no reference covariates", color=MUTED, transform=side.transAxes)
     return fig
