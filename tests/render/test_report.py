@@ -379,10 +379,10 @@ def test_baseline_skewed_covariate_uses_median_iqr():
     rng = np.random.default_rng(1)
     view.arrays["raw"] = view.arrays["raw"].assign(age=rng.exponential(3.0, 100))
     row = baseline_table(view).query("characteristic == 'age'").iloc[0]
-    assert row.summary.startswith("median [IQR]")
+    assert row.summary.startswith("median (Q1 to Q3)")
     x = view.arrays["raw"].iloc[view.arrays["used"]].age.to_numpy()[view.arrays["t"] == 1]
     q1, med, q3 = np.percentile(x, [25, 50, 75])  # numpy's default linear interpolation = pandas'
-    assert row.exposed == f"{med:,.2f} [{q1:,.2f}, {q3:,.2f}]"
+    assert row.exposed == f"{med:,.2f} ({q1:,.2f} to {q3:,.2f})"
 
 
 def test_baseline_without_raw_keeps_smds():
@@ -399,6 +399,8 @@ def test_baseline_markdown_and_latex_escape_user_text():
     table = baseline_table(view)
     md = baseline_markdown(table, view.data)
     assert "a\\|b & c_d 50%" in md and len(md.splitlines()) == len(table) + 2
+    assert "| Characteristic | Level | Shown as | Exposed: a\\|b & c_d 50% |" in md
+    assert "Std. difference, crude (after trimming) | Std. difference, within strata |" in md
     tex = baseline_latex(table, view.data)
     assert r"a|b \& c\_d 50\%" in tex and tex.count(r"\\") >= len(table) + 1
 
@@ -636,3 +638,12 @@ def test_overlap_gives_each_group_its_own_scale():
         assert max(heights) <= max(abs(v) for v in ax.get_ylim()) <= max(heights) * 1.1
     assert bottom.yaxis_inverted() and not top.yaxis_inverted()
     assert not top.texts and not bottom.texts  # labels live in the legend, not on the bars
+
+
+def test_baseline_crude_header_says_after_trimming():
+    view = handmade()
+    from stratagap.render.report.baseline import crude_label
+    view.data["flow"]["trimmed_by_group"] = {"exposed": 0, "reference": 0}
+    assert crude_label(view.data) == "Std. difference, crude"
+    view.data["flow"]["trimmed_by_group"] = {"exposed": 0, "reference": 12}
+    assert crude_label(view.data) == "Std. difference, crude (after trimming)"

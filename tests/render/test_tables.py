@@ -54,7 +54,7 @@ def test_cross_checks_frame(tables):
 def test_baseline_frame(tables):
     df = tables.baseline
     assert isinstance(df, pd.DataFrame)
-    assert df.characteristic.tolist() == ["N", "age", "role", "role", "role"]
+    assert df.characteristic.tolist() == ["Number of people", "age", "role", "role", "role"]
     assert df.level.tolist() == ["", "", "", "a", "b"]
 
 

@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 import math
 
-from .baseline import BASELINE_COLUMNS, analysed_raw, baseline_table
+from .baseline import BASELINE_COLUMNS, analysed_raw, baseline_table, header as baseline_header
 from .flow import flow_steps
 
 __all__ = ["build_context", "spec_toml"]
@@ -114,6 +114,7 @@ def build_context(view, figures: dict, *, compact: bool) -> dict:
         "warnings": data.get("warnings") or [], "overlap": data.get("overlap") or {},
         "propensity": data.get("propensity") or {}, "balance": data.get("balance") or {},
         "balance_rows": balance_rows, "baseline_header": [c for c in BASELINE_COLUMNS],
+        "baseline_header_text": baseline_header(data),
         "baseline_rows": [{k: (None if isinstance(v, float) and not math.isfinite(v) else v)
                            for k, v in row.items()} for row in base.to_dict("records")], "baseline_has_raw": raw is not None,
         "strata_rows": _strata_rows(data), "strata_info": data.get("strata_info") or {},

@@ -1,9 +1,9 @@
 """The baseline-characteristics table of a manuscript, from the analysed rows.
 
-Per group: mean (SD) for numeric covariates, median [IQR] for skewed ones (|sample skewness|
-> 1 in the analysed rows pooled, a rule of thumb: common practice), n (%) for 0/1 covariates and
-for each level of a categorical one; beside them the standardized mean differences before and
-after adjustment, taken from the result's balance rows (Austin 2009; after adjustment on the
+Per group: mean (SD) for numeric covariates, median (Q1 to Q3) for skewed ones (|sample
+skewness| > 1 in the analysed rows pooled, a rule of thumb: common practice), count (%) for 0/1
+covariates and for each level of a categorical one; beside them the standardized differences
+crude and within strata, taken from the result's balance rows (Austin 2009; after adjustment on the
 before-adjustment denominator, Stuart 2010). The group summaries are descriptive; the SMDs are
 the result's own.
 
@@ -25,10 +25,10 @@ import pandas as pd
 
 from ._style import view_of
 
-__all__ = ["baseline_table", "baseline_markdown", "baseline_latex", "SKEW_RULE",
-           "BASELINE_COLUMNS"]
+__all__ = ["baseline_table", "baseline_markdown", "baseline_latex", "header", "crude_label",
+           "SKEW_RULE", "BASELINE_COLUMNS"]
 
-#: |skewness| above which a numeric covariate is summarized by median [IQR] (common practice).
+#: |skewness| above which a numeric covariate is summarized by median (Q1 to Q3) (common practice).
 SKEW_RULE = 1.0
 BASELINE_COLUMNS = ["characteristic", "level", "summary", "exposed", "reference", "smd_before",
                     "smd_after"]
@@ -96,7 +96,7 @@ def baseline_table(result) -> pd.DataFrame:
     by = flow.get("analysed_by_group") or {}
     n1 = int(t.sum()) if len(t) else by.get("exposed")
     n0 = int(len(t) - t.sum()) if len(t) else by.get("reference")
-    out = [{"characteristic": "N", "level": "", "summary": "n",
+    out = [{"characteristic": "Number of people", "level": "", "summary": "count",
             "exposed": "" if n1 is None else f"{n1:,}", "reference": "" if n0 is None else f"{n0:,}",
             "smd_before": None, "smd_after": None}]
     have = raw is not None and len(raw) == len(t) and len(t) > 0
@@ -119,7 +119,7 @@ def _covariate_rows(col: pd.Series, t, cov, rows) -> list[dict]:
     if numeric and _is_binary01(col):
         b, a = _smd(rows, cov)
         cells = {g: _count(s, 1) for g, s in groups.items()}
-        return [{"characteristic": cov, "level": "= 1", "summary": "n (%)", **cells,
+        return [{"characteristic": cov, "level": "= 1", "summary": "count (%)", **cells,
                  "smd_before": b, "smd_after": a}]
     if numeric:
         values = col.astype(float)
@@ -127,20 +127,20 @@ def _covariate_rows(col: pd.Series, t, cov, rows) -> list[dict]:
         d = _digits(values.to_numpy())
         b, a = _smd(rows, cov)
         if skew is not None and math.isfinite(skew) and abs(skew) > SKEW_RULE:
-            cells = {g: f"{_num(s.median(), d)} [{_num(s.quantile(0.25), d)}, "
-                        f"{_num(s.quantile(0.75), d)}]" for g, s in groups.items()}
-            summary = f"median [IQR] (skewness {skew:.1f})"
+            cells = {g: f"{_num(s.median(), d)} ({_num(s.quantile(0.25), d)} to "
+                        f"{_num(s.quantile(0.75), d)})" for g, s in groups.items()}
+            summary = f"median (Q1 to Q3), skewness {skew:.1f}"
         else:
             cells = {g: f"{_num(s.mean(), d)} ({_num(s.std(ddof=1), d)})" for g, s in groups.items()}
             summary = "mean (SD)"
         return [{"characteristic": cov, "level": "", "summary": summary, **cells,
                  "smd_before": b, "smd_after": a}]
     levels = sorted(pd.unique(col.dropna()), key=lambda x: str(x))
-    out = [{"characteristic": cov, "level": "", "summary": "n (%)", "exposed": "",
+    out = [{"characteristic": cov, "level": "", "summary": "count (%)", "exposed": "",
             "reference": "", "smd_before": None, "smd_after": None}]
     for level in levels:
         b, a = _smd(rows, cov, level)
-        out.append({"characteristic": cov, "level": str(level), "summary": "n (%)",
+        out.append({"characteristic": cov, "level": str(level), "summary": "count (%)",
                     **{g: _count(s, level) for g, s in groups.items()},
                     "smd_before": b, "smd_after": a})
     return out
@@ -157,10 +157,19 @@ def _smd_text(x) -> str:
     return "" if x is None or (isinstance(x, float) and not math.isfinite(x)) else f"{x:.3f}"
 
 
-def _header(data: dict) -> list[str]:
+def crude_label(data: dict) -> str:
+    """Header of the crude standardized difference: says so when trimming set units aside."""
+    trimmed = (data.get("flow") or {}).get("trimmed_by_group") or {}
+    after_trimming = any(v for v in trimmed.values())
+    return "Std. difference, crude" + (" (after trimming)" if after_trimming else "")
+
+
+def header(data: dict) -> list[str]:
+    """Column headers of the printed table (Markdown, LaTeX and the report)."""
     q = data.get("question") or {}
-    return ["Characteristic", "", "Summary", f"Exposed ({q.get('exposed_value', '')})",
-            f"Reference ({q.get('reference_value', '')})", "SMD before", "SMD after"]
+    return ["Characteristic", "Level", "Shown as", f"Exposed: {q.get('exposed_value', '')}",
+            f"Reference: {q.get('reference_value', '')}", crude_label(data),
+            "Std. difference, within strata"]
 
 
 def _cells(table: pd.DataFrame) -> list[list[str]]:
@@ -173,7 +182,7 @@ def baseline_markdown(table: pd.DataFrame, data: dict) -> str:
     """A pipe table (GitHub/pandoc Markdown); ``|`` in user text is escaped."""
     def esc(s):
         return s.replace("\\", "\\\\").replace("|", "\\|").replace("\n", " ")
-    lines = ["| " + " | ".join(esc(h) for h in _header(data)) + " |",
+    lines = ["| " + " | ".join(esc(h) for h in header(data)) + " |",
              "|" + "|".join(["---"] * 3 + ["---:"] * 4) + "|"]
     lines += ["| " + " | ".join(esc(c) for c in row) + " |" for row in _cells(table)]
     return "\n".join(lines) + "\n"
@@ -192,7 +201,7 @@ def baseline_latex(table: pd.DataFrame, data: dict) -> str:
     """A ``tabular`` (booktabs rules) ready to paste; LaTeX special characters escaped."""
     lines = [r"% Baseline characteristics of the analysed rows (stratagap); needs \usepackage{booktabs}",
              r"\begin{tabular}{lllllrr}", r"\toprule",
-             " & ".join(tex_escape(h) for h in _header(data)) + r" \\", r"\midrule"]
+             " & ".join(tex_escape(h) for h in header(data)) + r" \\", r"\midrule"]
     lines += [" & ".join(tex_escape(c) for c in row) + r" \\" for row in _cells(table)]
     lines += [r"\bottomrule", r"\end{tabular}"]
     return "\n".join(lines) + "\n"
