@@ -58,6 +58,11 @@ class Design(NamedTuple):
     dropped: list
 
 
+def level_label(covariate, level) -> str:
+    """The one spelling of a dummy level in every table, figure, file and message: "role: nurse"."""
+    return f"{covariate}: {level}"
+
+
 def fmt(v) -> str:
     """Text form of a value: integral floats without ``.0``, everything else ``str``."""
     if isinstance(v, (float, np.floating)) and np.isfinite(v) and float(v).is_integer():
@@ -223,7 +228,7 @@ def _plain_design(frame, covariates):
             for i, k in enumerate(order):
                 v = (codes == k).astype(np.float64)
                 lev = uniques[k]
-                name = f"{c}[{fmt(lev)}]"
+                name = level_label(c, fmt(lev))
                 if i == 0:
                     terms.append(BalanceTerm(name, c, fmt(lev), "binary", None, v))
                     continue
@@ -238,9 +243,10 @@ def _plain_design(frame, covariates):
         ind = f"{c}__missing"
         if ind in frame.columns:
             v = frame[ind].to_numpy(dtype=np.float64)
-            terms.append(BalanceTerm(ind, c, MISSING_LEVEL, "binary", len(cols), v))
+            terms.append(BalanceTerm(level_label(c, MISSING_LEVEL), c, MISSING_LEVEL, "binary",
+                                     len(cols), v))
             cols.append(v)
-            names.append(ind)
+            names.append(level_label(c, MISSING_LEVEL))
     return np.column_stack(cols), names, terms, refs
 
 
