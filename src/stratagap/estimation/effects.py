@@ -36,7 +36,7 @@ from . import _within_strata as _lin
 from ..errors import InputError, ModelWarning
 from ._estimate import (MATCHED_SET_MAX, Estimate, StratifiedEstimate, _between_set_variance,
                         _check_alpha, _check_estimand, _check_labels, _check_X, _check_yt,
-                        _matched_sets, _outcome_kind, _strata, _weights)
+                        _layout, _matched_sets, _outcome_kind, _strata)
 from ._inversion import ConstantEffect, constant_effect
 from ._mantel_haenszel import mantel_haenszel
 
@@ -178,8 +178,9 @@ def stratified_regression(y, t, X, labels, *, estimand, measure="difference", al
         raise InputError(f"`measure` {measure!r} needs a binary (0/1) outcome; use "
                          "measure='difference' for a continuous outcome")
     names = list(names) if names is not None else [f"x{j}" for j in range(X.shape[1])]
-    ids, n1, n0 = _strata(t, labels)
-    w = _weights(n1, n0, estimand)
+    _strata(t, labels)  # every stratum holds both groups
+    layout = _layout(t, labels, estimand)
+    ids, n1, n0, w = layout.ids, layout.n1, layout.n0, layout.weights
     matched = _matched_sets(n1, n0)
     fits = []
     for s in ids:
@@ -295,8 +296,9 @@ def plain_stratified_difference(y, t, labels, *, estimand, alpha=0.05,
     y, t = _check_yt(y, t)
     labels = _check_labels(labels, len(y))
     kind = _outcome_kind(y, None)
-    ids, n1, n0 = _strata(t, labels)
-    w = _weights(n1, n0, estimand)
+    _strata(t, labels)  # every stratum holds both groups
+    layout = _layout(t, labels, estimand)
+    ids, n1, n0, w = layout.ids, layout.n1, layout.n0, layout.weights
     res = [_lin.difference_of_means(y[labels == s], t[labels == s].astype(float)) for s in ids]
     tau = np.array([r[1] for r in res])
     v = np.array([r[2][1, 1] for r in res])

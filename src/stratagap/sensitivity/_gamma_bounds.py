@@ -31,6 +31,8 @@ from scipy import optimize
 
 from ..errors import InputError
 from .._base.jsonable import jsonable as _jsonable
+from .._base.layout import StratumLayout
+from ..inference import Statistic
 from ._nchyper import _cut_moments, _normal_sf, _perm_moments
 from ._gamma_binary import _binary_exact_p, _binary_normal_p, _binary_setup, _convolution_cost
 
@@ -172,28 +174,20 @@ def _check(values, t, labels, estimand, statistic, direction):
 
 def _design(values, t, labels, estimand, statistic, sign):
     """Per-stratum sorted values and the linear map from exposed sums S_s to the statistic."""
-    _, inv = np.unique(labels, return_inverse=True)
-    n_s = np.bincount(inv)
-    n1_s = np.bincount(inv, weights=t).astype(np.int64)
-    n0_s = n_s - n1_s
-    if statistic == "mean_difference" and ((n1_s == 0) | (n0_s == 0)).any():
-        bad = int(np.flatnonzero((n1_s == 0) | (n0_s == 0))[0])
+    layout = StratumLayout.build(labels, t, estimand)
+    inv = layout.codes
+    n_s, n1_s = layout.n.astype(np.int64), layout.n1.astype(np.int64)
+    both = layout.has_both_groups()
+    if statistic == "mean_difference" and not both.all():
+        bad = int(np.flatnonzero(~both)[0])
         raise InputError(f"`labels`: stratum {bad} lacks an exposed or a reference unit; the mean difference "
                          "needs both groups in every stratum (set such rows aside with label -1)")
-    w = n_s / n_s.sum() if estimand == "ate" else n1_s / max(n1_s.sum(), 1)  # ATE n_s/n, ATT n1_s/n1
     v = sign * values
-    S = np.bincount(inv, weights=v * t, minlength=len(n_s))
-    R = np.bincount(inv, weights=v, minlength=len(n_s))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        if statistic == "mean_difference":
-            coef = w * (1.0 / n1_s + 1.0 / n0_s)  # T = sum w_s [S_s (1/n1s + 1/n0s) - R_s/n0s]
-            const_s = -w * R / n0_s
-        else:
-            coef = np.ones(len(n_s))
-            const_s = np.zeros(len(n_s))
-    d = _Design(n_strata=len(n_s))
+    S = layout.exposed_sums(v[:, None], t)[0]
+    # T = sum_s (coef_s S_s + const_s), the core test's statistic in linear form
+    coef, const_s = Statistic.of(statistic, layout, v[:, None]).linear_form()
+    d = _Design(n_strata=layout.n_strata)
     d.observed = float(np.sum(coef * S + const_s))
-    both = (n1_s > 0) & (n0_s > 0)
     # strata with one group only: their S_s is fixed by design
     d.const = float(np.sum(const_s) + np.sum((coef * S)[~both]))
     order = np.lexsort((v, inv))
