@@ -172,9 +172,8 @@ def _check(values, t, labels, estimand, statistic, direction):
     return values[keep], t[keep].astype(np.int8), labels[keep].astype(np.int64)
 
 
-def _design(values, t, labels, estimand, statistic, sign):
+def _design(values, t, layout, statistic, sign):
     """Per-stratum sorted values and the linear map from exposed sums S_s to the statistic."""
-    layout = StratumLayout.build(labels, t, estimand)
     inv = layout.codes
     n_s, n1_s = layout.n.astype(np.int64), layout.n1.astype(np.int64)
     both = layout.has_both_groups()
@@ -235,18 +234,19 @@ class _Bounder:
     def __init__(self, values, t, labels, estimand, statistic, direction):
         values, t, labels = _check(values, t, labels, estimand, statistic, direction)
         self.statistic, self.estimand = statistic, estimand
+        layout = StratumLayout.build(labels, t, estimand)  # rows set aside are dropped by _check
         if direction == "auto":
-            d = _design(values, t, labels, estimand, statistic, 1.0)
+            d = _design(values, t, layout, statistic, 1.0)
             null_mean = sum(c @ _perm_moments(n, n1, V)[0] for (n, n1, V), c in zip(d.groups, d.coef))
             direction = "greater" if d.observed - d.const >= null_mean else "less"
         self.direction = direction
         sign = 1.0 if direction == "greater" else -1.0
         self.binary = statistic == "sum" and np.isin(values, (0.0, 1.0)).all()
-        self.design = _design(values, t, labels, estimand, statistic, sign)
+        self.design = _design(values, t, layout, statistic, sign)
         self.moments = "exact"
         self._cache = {}
         if self.binary:
-            self.raw, self.count = _binary_setup(values, t, labels, sign)
+            self.raw, self.count = _binary_setup(values, t, layout, sign)
             self.method = "exact" if _convolution_cost(self.raw) <= EXACT_CONVOLUTION_BUDGET else "normal_binary"
         else:
             self.method = "bracket"
