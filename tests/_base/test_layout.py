@@ -112,3 +112,32 @@ def test_the_public_weight_functions_are_the_layout_bit_for_bit():
     # a label with no unit keeps its place with weight 0 (indexed by label)
     np.testing.assert_allclose(stratum_weights(np.array([0, 0, 2, 2]), np.array([1, 0, 1, 0]),
                                                "ate"), [0.5, 0.0, 0.5])
+
+
+def test_every_stage_given_the_layout_gives_the_bits_it_builds_and_refuses_another():
+    from stratagap.errors import InputError
+    from stratagap.estimation import effects
+    from stratagap.inference import residualize
+    from stratagap.sensitivity import gamma_bounds, sensitivity_value
+
+    rng = np.random.default_rng(12)
+    n = 240
+    X = rng.normal(size=(n, 2))
+    labels = rng.integers(0, 4, n)
+    t = (rng.random(n) < 0.4).astype(np.int8)
+    y = X @ [0.5, 0.2] + 0.4 * t + rng.normal(size=n)
+    r = residualize(y, X, labels)
+    lay = StratumLayout.build(labels, t, "att")
+    calls = {
+        "regression": lambda **k: effects.stratified_regression(y, t, X, labels, estimand="att", **k),
+        "plain": lambda **k: effects.plain_stratified_difference(y, t, labels, estimand="att", **k),
+        "bounds": lambda **k: gamma_bounds(r, t, labels, estimand="att", **k),
+        "value": lambda **k: sensitivity_value(r, t, labels, estimand="att", **k),
+        "inversion": lambda **k: effects.constant_effect(y, t, X, labels, estimand="att",
+                                                         resamples=199, seed=2, **k),
+    }
+    other = StratumLayout.build(labels[:-1], t[:-1], "att")
+    for name, call in calls.items():
+        assert call(layout=lay).to_dict() == call().to_dict(), name
+        with pytest.raises(InputError, match="`layout` must be the StratumLayout"):
+            call(layout=other)

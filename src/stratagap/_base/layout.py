@@ -24,7 +24,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["StratumLayout", "stratum_codes", "ESTIMANDS"]
+from ..errors import InputError
+
+__all__ = ["StratumLayout", "stratum_codes", "layout_for", "ESTIMANDS"]
 
 ESTIMANDS = ("ate", "att")
 
@@ -131,3 +133,21 @@ class StratumLayout:
         return np.stack([np.bincount(self.codes, weights=values[:, j] * t,
                                      minlength=self.n_strata)
                          for j in range(values.shape[1])])
+
+
+def layout_for(layout, labels, t, estimand, *, n_strata=None) -> StratumLayout:
+    """``layout`` when it fits the analysed rows (``labels`` >= 0, exposure ``t``), else a new one.
+
+    A stage given the caller's layout trusts it after a cheap check (row count, exposed count,
+    estimand and, when given, ``n_strata``) that catches a layout of other rows;
+    ``layout=None`` builds it here.
+    """
+    if layout is None:
+        return StratumLayout.build(labels, t, estimand)
+    if (not isinstance(layout, StratumLayout) or layout.n_rows != len(labels)
+            or layout.estimand != estimand or layout.n1.sum() != np.sum(t)
+            or (n_strata is not None and layout.n_strata != n_strata)):
+        raise InputError("`layout` must be the StratumLayout of the analysed rows (labels >= 0) "
+                         f"for estimand {estimand!r}; build it with StratumLayout.build(labels, "
+                         "t, estimand) or leave it out")
+    return layout

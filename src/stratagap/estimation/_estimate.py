@@ -14,7 +14,7 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 
 from ..errors import InputError
-from .._base.layout import StratumLayout
+from .._base.layout import layout_for
 from .._base.jsonable import jsonable
 
 #: Matched-set rule: every stratum has one unit in a group and at most this many units.
@@ -147,10 +147,13 @@ def _strata(t, labels):
     return ids, n1, n0
 
 
-def _layout(t, labels, estimand):
-    """The stratum layout (sizes, estimand weights) of the rows with ``labels >= 0``."""
+def _layout(t, labels, estimand, layout=None):
+    """The stratum layout (sizes, estimand weights) of the rows with ``labels >= 0``.
+
+    ``layout``: the caller's layout of those rows (checked and used), or None to build it.
+    """
     keep = labels >= 0
-    return StratumLayout.build(labels[keep], t[keep], estimand)
+    return layout_for(layout, labels[keep], t[keep], estimand)
 
 
 def _matched_sets(n1, n0) -> bool:

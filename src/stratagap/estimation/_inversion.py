@@ -49,7 +49,7 @@ from scipy import stats
 from .. import inference as _inference
 from ..errors import InputError, ModelWarning
 from .._base.jsonable import jsonable
-from .._base.layout import StratumLayout
+from .._base.layout import layout_for
 from .._base.rng import check_seed
 from ..inference import Statistic, tie_tolerance
 
@@ -263,11 +263,7 @@ def constant_effect(y, t, X, labels, *, estimand, alpha=0.05, resamples=10000, s
     tf = t.astype(float)
     r_y = np.asarray(_inference.residualize(y, X, labels), dtype=float)  # Rosenbaum 2002
     r_t = np.asarray(_inference.residualize(tf, X, labels), dtype=float)
-    if layout is None:
-        layout = StratumLayout.build(labels, tf, estimand)
-    elif layout.n_rows != labels.size or layout.estimand != estimand:
-        raise InputError("`layout` must be the StratumLayout of the analysed rows (labels >= 0) "
-                         f"for estimand {estimand!r}, or left out")
+    layout = layout_for(layout, labels, tf, estimand)
     values = np.column_stack([r_y, r_t])
     totals = layout.totals(values)
     exposed = layout.exposed_sums(values, tf)

@@ -40,7 +40,7 @@ from ._checks import (MAX_RESAMPLES, _check_batch, _check_choice, _check_estiman
 from .draws import SharedDraws, mc_batches, shared_draws
 from .statistic import STATISTICS, TIE_RTOL, Statistic, studentized_columns, tie_tolerance
 from ..errors import InputError
-from .._base.layout import StratumLayout
+from .._base.layout import StratumLayout, layout_for
 from .._base.rng import check_seed
 
 __all__ = ["PermutationResult", "residualize", "null_exposed_sums", "null_statistics",
@@ -123,16 +123,10 @@ def null_exposed_sums(values, t, labels, resamples, seed, batch_size=None, progr
 
 
 def _layout(layout, codes, n_strata, tk, estimand):
-    """The layout of the analysed rows: the one given (built by the caller from the same
-    labels and exposure), or a new one."""
+    """The given layout of the analysed rows (checked), or one built from their codes."""
     if layout is None:
         return StratumLayout.from_codes(codes, tk, estimand, n_strata=n_strata)
-    if (not isinstance(layout, StratumLayout) or layout.n_rows != codes.size
-            or layout.n_strata != n_strata or layout.estimand != estimand):
-        raise InputError("`layout` must be the StratumLayout of the analysed rows (labels >= 0) "
-                         f"for estimand {estimand!r}; build it with StratumLayout.build(labels, "
-                         "t, estimand) or leave it out")
-    return layout
+    return layout_for(layout, codes, tk, estimand, n_strata=n_strata)
 
 
 def _prepare(values, t, labels, estimand, statistic, layout=None):

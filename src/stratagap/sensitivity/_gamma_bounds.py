@@ -31,7 +31,7 @@ from scipy import optimize
 
 from ..errors import InputError
 from .._base.jsonable import jsonable as _jsonable
-from .._base.layout import StratumLayout
+from .._base.layout import layout_for
 from ..inference import Statistic
 from ._nchyper import _cut_moments, _normal_sf, _perm_moments
 from ._gamma_binary import _binary_exact_p, _binary_normal_p, _binary_setup, _convolution_cost
@@ -231,10 +231,10 @@ def _bracket_p(d, gamma, cache=None):
 class _Bounder:
     """Callable p-value bound at one Gamma, prepared once for a data set."""
 
-    def __init__(self, values, t, labels, estimand, statistic, direction):
+    def __init__(self, values, t, labels, estimand, statistic, direction, layout=None):
         values, t, labels = _check(values, t, labels, estimand, statistic, direction)
         self.statistic, self.estimand = statistic, estimand
-        layout = StratumLayout.build(labels, t, estimand)  # rows set aside are dropped by _check
+        layout = layout_for(layout, labels, t, estimand)  # rows set aside: dropped by _check
         if direction == "auto":
             d = _design(values, t, layout, statistic, 1.0)
             null_mean = sum(c @ _perm_moments(n, n1, V)[0] for (n, n1, V), c in zip(d.groups, d.coef))
@@ -276,7 +276,7 @@ def _check_gammas(gammas):
 
 
 def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_difference", direction="greater",
-                 gammas=DEFAULT_GAMMAS) -> GammaBounds:
+                 gammas=DEFAULT_GAMMAS, layout=None) -> GammaBounds:
     """Upper bounds on the one-sided p-value of the stratified test for each Gamma.
 
     Parameters
@@ -296,6 +296,8 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
         Tail bounded; "less" bounds P(T <= t) by applying the bound to -values; "auto" takes the
         side of the observed effect.
     gammas : sequence of float >= 1
+    layout : :class:`stratagap._base.layout.StratumLayout`, optional
+        The caller's layout of the rows with ``labels >= 0``; None builds it here.
 
     Returns
     -------
@@ -316,7 +318,7 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
     moments of the noncentral hypergeometric; from memory). IARC, Lyon.
     """
     gammas = _check_gammas(gammas)
-    b = _Bounder(values, t, labels, estimand, statistic, direction)
+    b = _Bounder(values, t, labels, estimand, statistic, direction, layout)
     p_up, p_sep = zip(*(b(g) for g in gammas))
     return GammaBounds(gammas=list(gammas), p_upper=list(p_up), p_separable=list(p_sep), method=b.method,
                        method_text=_METHOD_TEXT[b.method], statistic=statistic, direction=b.direction,
@@ -343,12 +345,12 @@ def _root(f, alpha, cap):
 
 
 def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_difference", direction="auto",
-                      alpha=0.05, two_sided=False, cap=GAMMA_CAP) -> SensitivityValue:
+                      alpha=0.05, two_sided=False, cap=GAMMA_CAP, layout=None) -> SensitivityValue:
     """The Gamma at which the one-sided p-value bound reaches alpha (root finding on log Gamma).
 
     Parameters
     ----------
-    values, t, labels, estimand, statistic, direction
+    values, t, labels, estimand, statistic, direction, layout
         As for :func:`gamma_bounds`; the default direction "auto" is the side of the observed effect.
     alpha : float, default 0.05
         Level. With ``two_sided=True`` (the core test was two-sided) each side uses alpha/2.
@@ -377,7 +379,7 @@ def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_diff
     level = alpha / 2.0 if two_sided else alpha
     note = (f"one-sided bound at alpha/2 = {level:g} per side (the core test is two-sided)" if two_sided
             else f"one-sided bound at alpha = {level:g}")
-    b = _Bounder(values, t, labels, estimand, statistic, direction)
+    b = _Bounder(values, t, labels, estimand, statistic, direction, layout)
     g_up, flag_up = _root(lambda g: b(g)[0], level, cap)
     g_sep, flag_sep = _root(lambda g: b(g)[1], level, cap)
     return SensitivityValue(gamma=g_up, gamma_separable=g_sep, flag=flag_up, flag_separable=flag_sep,
