@@ -25,6 +25,7 @@ from .inference import permutation as _permutation
 from .stratify import scores as _scores
 from . import sensitivity as _sensitivity
 from .stratify import strata as _strata
+from ._base.layout import StratumLayout
 from .errors import (InputError, MissingDataWarning, ModelWarning, StrataWarning,
                       StratagapWarning)
 from .result import AnalysisResult, CAUTIONS, versions
@@ -127,7 +128,8 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
     balance = _balance.balance_table(X, t, terms, weights_after=weights,
                                      logit=propensity.logit[used])
 
-    tests = _tests(spec, y, t, X, labels, binary, progress)
+    layout = StratumLayout.build(labels, t, spec.estimand)  # one layout of the analysed rows
+    tests, draws = _tests(spec, y, t, X, labels, layout, binary, progress)
     headline_measure = "difference" if spec.measure == "difference" else spec.measure
     adjusted = _effects.stratified_regression(
         y, t, X, labels, estimand=spec.estimand, measure=headline_measure, alpha=spec.alpha,
@@ -137,12 +139,12 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
                                                  alpha=spec.alpha, population=population)
     constant = None
     if not binary:
-        with tests.pop("draws"):  # the shuffles drawn for the tests serve the inversion too
-            constant = _effects.constant_effect(y, t, X, labels, estimand=spec.estimand,
-                                                alpha=spec.alpha, resamples=spec.resamples,
-                                                seed=spec.seed, engine=spec.engine,
-                                                batch_size=spec.batch_size,
-                                                population=population)
+        # the shuffles drawn for the tests serve the inversion too
+        constant = _effects.constant_effect(y, t, X, labels, estimand=spec.estimand,
+                                            alpha=spec.alpha, resamples=spec.resamples,
+                                            seed=spec.seed, engine=spec.engine,
+                                            batch_size=spec.batch_size, population=population,
+                                            draws=draws, layout=layout)
     mh = _effects.mantel_haenszel(y, t, labels, alpha=spec.alpha) if binary else None
     risk_ratio = None
     if binary:
@@ -185,46 +187,44 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
     return parts
 
 
-def _tests(spec, y, t, X, labels, binary, progress) -> dict:
+def _tests(spec, y, t, X, labels, layout, binary, progress):
     """The default test, its studentized companion and (binary outcomes) the MH sum test.
 
-    Under one :class:`stratagap.inference.permutation.shared_draws` the Monte Carlo engine draws the
-    shuffles once for the default statistic, its studentized companion and (continuous outcomes)
-    the residualized exposure of the constant-effect inversion; every result is bit-identical
-    to separate runs. For continuous outcomes ``out["draws"]`` carries that cache to the
-    ``constant_effect`` call, which pops it.
+    Returns ``(tests, draws)``: the tests (a dict) and the
+    :class:`stratagap.inference.SharedDraws` they used. The Monte Carlo engine draws the
+    shuffles once for the default statistic, its studentized companion and (continuous
+    outcomes) the residualized exposure of the constant-effect inversion, which is given the
+    same ``draws``; every result is bit-identical to separate runs.
     """
     common = dict(estimand=spec.estimand, alternative=spec.alternative, engine=spec.engine,
-                  resamples=spec.resamples, seed=spec.seed, batch_size=spec.batch_size)
+                  resamples=spec.resamples, seed=spec.seed, batch_size=spec.batch_size,
+                  layout=layout)
     if spec.statistic in ("adjusted", "studentized"):
         values = _permutation.residualize(y, X, labels)  # Rosenbaum 2002: fixed under the sharp null
     else:
         values = y
     name = {"adjusted": "mean_difference", "difference": "mean_difference",
             "studentized": "studentized", "sum": "sum"}[spec.statistic]
-    counts = np.bincount(labels, weights=t), np.bincount(labels, weights=1 - t)
-    companion = spec.statistic == "adjusted" and min(counts[0].min(), counts[1].min()) >= 2
+    companion = spec.statistic == "adjusted" and min(layout.n1.min(), layout.n0.min()) >= 2
     # columns drawn in the same pass as the main test's (the inversion's r_t = residualized t)
     columns = [values] if binary else [values, _permutation.residualize(t.astype(float), X,
                                                                          labels)]
     draws = _permutation.shared_draws(t, labels, columns=columns,
                                       studentized=[values] if companion else [])
-    with draws:
-        main = _permutation.stratified_test(values, t, labels, statistic=name,
-                                            progress=progress, **common)
-        out = {"main": main, "values": values,
-               "adjusted": spec.statistic in ("adjusted", "studentized")}
-        if companion:  # within-group variances need 2 units
-            out["studentized"] = _permutation.stratified_test(values, t, labels,
-                                                              statistic="studentized", **common)
-        elif spec.statistic == "adjusted":
-            warnings.warn("The studentized (weak-null) companion test was not run: some strata "
-                          "hold fewer than 2 units of a group (e.g. matched pairs).", StrataWarning)
+    main = _permutation.stratified_test(values, t, labels, statistic=name, progress=progress,
+                                        draws=draws, **common)
+    out = {"main": main, "values": values,
+           "adjusted": spec.statistic in ("adjusted", "studentized")}
+    if companion:  # within-group variances need 2 units
+        out["studentized"] = _permutation.stratified_test(values, t, labels,
+                                                          statistic="studentized",
+                                                          draws=draws, **common)
+    elif spec.statistic == "adjusted":
+        warnings.warn("The studentized (weak-null) companion test was not run: some strata "
+                      "hold fewer than 2 units of a group (e.g. matched pairs).", StrataWarning)
     if binary and spec.statistic != "sum":
         out["sum"] = _permutation.stratified_test(y, t, labels, statistic="sum", **common)
-    if not binary:
-        out["draws"] = draws
-    return out
+    return out, draws
 
 
 def _heterogeneity_block(per_stratum, y, t, labels, binary) -> dict:

@@ -110,12 +110,11 @@ def test_shared_draws_give_the_separate_results_in_one_pass(monkeypatch):
     monkeypatch.setattr(_mc, "iter_batches", lambda plan, *a, **k: (passes.append(plan.k),
                                                                      real(plan, *a, **k))[1])
     draws = P.shared_draws(t, labels, columns=[r, rt], studentized=[r])
-    with draws:
-        shared = [P.stratified_test(r, t, labels, **kw),
-                  P.stratified_test(r, t, labels, statistic="studentized", **kw)]
-    with draws:  # entered again around the inversion, as the pipeline does
-        inv2 = E.constant_effect(y, t, X, labels, estimand="ate", resamples=700, seed=11,
-                                 engine="monte_carlo")
+    shared = [P.stratified_test(r, t, labels, draws=draws, **kw),
+              P.stratified_test(r, t, labels, statistic="studentized", draws=draws, **kw)]
+    # passed on to the inversion, as the pipeline does
+    inv2 = E.constant_effect(y, t, X, labels, estimand="ate", resamples=700, seed=11,
+                             engine="monte_carlo", draws=draws)
     assert passes == [4]  # r, r_t, centred r, its square: one pass for all three
     for a, b in zip(alone, shared):
         assert a.to_dict() == b.to_dict()
@@ -127,10 +126,10 @@ def test_shared_draws_respect_the_seed_and_binary_path():
     y, t, X, labels = _design(1)
     yb = (y > 0).astype(float)
     kw = dict(estimand="ate", engine="monte_carlo", resamples=300)
-    with P.shared_draws(t, labels, columns=[y]):
-        a = P.stratified_test(y, t, labels, seed=1, **kw)
-        b = P.stratified_test(y, t, labels, seed=2, **kw)
-        s = P.stratified_test(yb, t, labels, statistic="sum", seed=1, **kw)
+    draws = P.shared_draws(t, labels, columns=[y])
+    a = P.stratified_test(y, t, labels, seed=1, draws=draws, **kw)
+    b = P.stratified_test(y, t, labels, seed=2, draws=draws, **kw)
+    s = P.stratified_test(yb, t, labels, statistic="sum", seed=1, draws=draws, **kw)
     assert np.array_equal(a.null_distribution,
                           P.stratified_test(y, t, labels, seed=1, **kw).null_distribution)
     assert np.array_equal(b.null_distribution,

@@ -14,6 +14,7 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 
 from ..errors import InputError
+from .._base.layout import layout_for
 from .._base.jsonable import jsonable
 
 #: Matched-set rule: every stratum has one unit in a group and at most this many units.
@@ -146,9 +147,13 @@ def _strata(t, labels):
     return ids, n1, n0
 
 
-def _weights(n1, n0, estimand):
-    n = n1 + n0
-    return n / n.sum() if estimand == "ate" else n1 / n1.sum()  # estimand stratum weights
+def _layout(t, labels, estimand, layout=None):
+    """The stratum layout (sizes, estimand weights) of the rows with ``labels >= 0``.
+
+    ``layout``: the caller's layout of those rows (checked and used), or None to build it.
+    """
+    keep = labels >= 0
+    return layout_for(layout, labels[keep], t[keep], estimand)
 
 
 def _matched_sets(n1, n0) -> bool:

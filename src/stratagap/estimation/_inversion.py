@@ -46,9 +46,12 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 from scipy import stats
 
+from .. import inference as _inference
 from ..errors import InputError, ModelWarning
-from .._base.rng import check_seed
 from .._base.jsonable import jsonable
+from .._base.layout import layout_for
+from .._base.rng import check_seed
+from ..inference import Statistic, tie_tolerance
 
 #: Grid points used to locate the accepted set before bisection.
 GRID = 801
@@ -88,43 +91,6 @@ class ConstantEffect:
 
     def to_dict(self) -> dict:
         return jsonable(asdict(self))
-
-
-# --------------------------------------------------------------------------- statistic
-def _layout(t, labels, estimand):
-    ids, codes = np.unique(labels, return_inverse=True)
-    S = len(ids)
-    n = np.bincount(codes, minlength=S).astype(float)
-    n1 = np.bincount(codes, weights=t, minlength=S)
-    n0 = n - n1
-    w = n / n.sum() if estimand == "ate" else n1 / n1.sum()  # estimand stratum weights
-    return codes, n, n1, n0, w
-
-
-def _stat_from_sums(E, totals, n1, n0, w):
-    """Stratified difference of means from exposed sums ``E`` (S, ...) and totals (S,)."""
-    shape = (-1,) + (1,) * (E.ndim - 1)
-    n1, n0, w, R = (a.reshape(shape) for a in (n1, n0, w, totals))
-    # same arithmetic as the core test (mean1 - mean0 = E (1/n1 + 1/n0) - R/n0), so p(0) matches
-    return (w * (E * (1 / n1 + 1 / n0) - R / n0)).sum(axis=0)
-
-
-def _perm_moments(v, codes, n, n1, n0, w):
-    """Permutation variance/covariance matrix of the statistic for the columns of ``v``.
-
-    Per stratum, the exposed mean minus the reference mean under a random ``n1``-subset has
-    covariance ``n_s / (n1_s n0_s) S_s(j, l)`` with ``S_s`` the sample covariance (divisor
-    ``n_s - 1``) of the stratum's values (sampling without replacement).
-    """
-    k = v.shape[1]
-    V = np.zeros((k, k))
-    for s in range(len(n)):
-        vs = v[codes == s]
-        if n[s] < 2:
-            continue
-        c = np.atleast_2d(np.cov(vs, rowvar=False, ddof=1))
-        V += w[s] ** 2 * n[s] / (n1[s] * n0[s]) * c
-    return V
 
 
 # --------------------------------------------------------------------------- p-value function
@@ -229,7 +195,8 @@ def invert(A, C, p_of, alpha, centre, scale):
 
 # --------------------------------------------------------------------------- public entry
 def constant_effect(y, t, X, labels, *, estimand, alpha=0.05, resamples=10000, seed=0,
-                    engine="auto", batch_size=None, population=None) -> ConstantEffect:
+                    engine="auto", batch_size=None, population=None, draws=None,
+                    layout=None) -> ConstantEffect:
     """Constant additive effect and its CI by inverting the covariance-adjusted test.
 
     Parameters
@@ -257,6 +224,10 @@ def constant_effect(y, t, X, labels, *, estimand, alpha=0.05, resamples=10000, s
         Resamples per batch (results do not depend on it).
     population : str, optional
         Estimand label to show instead of "ATE"/"ATT".
+    draws : :class:`stratagap.inference.SharedDraws`, optional
+        Monte Carlo null draws shared with the core test (results are bit-identical without).
+    layout : :class:`stratagap._base.layout.StratumLayout`, optional
+        The layout of the analysed rows (labels >= 0), when the caller has built it.
 
     Returns
     -------
@@ -273,7 +244,6 @@ def constant_effect(y, t, X, labels, *, estimand, alpha=0.05, resamples=10000, s
     Rosenbaum (2002), Statistical Science 17, 286-327.
     """
     from . import _estimate as _est  # input checks shared with the other estimators
-    from ..inference import permutation as _perm
 
     alpha = _est._check_alpha(alpha)
     estimand = _est._check_estimand(estimand)
@@ -291,19 +261,20 @@ def constant_effect(y, t, X, labels, *, estimand, alpha=0.05, resamples=10000, s
     y, t, X, labels = y[keep], t[keep], X[keep], labels[keep]
     _est._strata(t, labels)  # every stratum holds both groups
     tf = t.astype(float)
-    r_y = np.asarray(_perm.residualize(y, X, labels), dtype=float)  # Rosenbaum 2002
-    r_t = np.asarray(_perm.residualize(tf, X, labels), dtype=float)
-    codes, n, n1, n0, w = _layout(tf, labels, estimand)
+    r_y = np.asarray(_inference.residualize(y, X, labels), dtype=float)  # Rosenbaum 2002
+    r_t = np.asarray(_inference.residualize(tf, X, labels), dtype=float)
+    layout = layout_for(layout, labels, tf, estimand)
     values = np.column_stack([r_y, r_t])
-    totals = np.stack([np.bincount(codes, weights=values[:, j], minlength=len(n))
-                       for j in range(2)])
-    exposed = np.stack([np.bincount(codes, weights=values[:, j] * tf, minlength=len(n))
-                        for j in range(2)])
-    A = float(_stat_from_sums(exposed[0], totals[0], n1, n0, w))
-    C = float(_stat_from_sums(exposed[1], totals[1], n1, n0, w))
-    V = _perm_moments(values, codes, n, n1, n0, w)
+    totals = layout.totals(values)
+    exposed = layout.exposed_sums(values, tf)
+    # one mean-difference statistic per column: T(tau0) = T(r_y) - tau0 T(r_t)
+    stat_y = Statistic("mean_difference", layout, totals[0:1])
+    stat_t = Statistic("mean_difference", layout, totals[1:2])
+    A = float(stat_y(exposed[0:1]))
+    C = float(stat_t(exposed[1:2]))
+    V = stat_y.null_covariance(values)
     label = population if population else estimand.upper()
-    pop = f"{int(n.sum())} units in {len(n)} strata"
+    pop = f"{int(layout.n.sum())} units in {layout.n_strata} strata"
     if not abs(C) > 1e-12 * max(1.0, float(np.sqrt(V[1, 1]))):
         warnings.warn("constant-effect inversion: the residualized exposure shows no "
                       "within-strata difference (covariates determine the exposure)",
@@ -314,9 +285,8 @@ def constant_effect(y, t, X, labels, *, estimand, alpha=0.05, resamples=10000, s
     est = A / C  # statistic equals its null centre (0)
     var_at = V[0, 0] - 2 * est * V[0, 1] + est ** 2 * V[1, 1]
     se = math.sqrt(max(var_at, 0.0)) / abs(C)
-    used_engine, p_of, tie, B = _engine_pvalues(_perm, values, tf, labels, estimand, engine,
-                                                resamples, seed, batch_size, A, C, V,
-                                                codes, n, n1, n0, w)
+    used_engine, p_of, B = _engine_pvalues(values, tf, labels, layout, (stat_y, stat_t),
+                                           engine, resamples, seed, batch_size, A, C, V, draws)
     if used_engine == "normal":
         lo, hi, is_interval = _normal_set(A, C, V, alpha)
     else:
@@ -335,41 +305,33 @@ def constant_effect(y, t, X, labels, *, estimand, alpha=0.05, resamples=10000, s
                           seed, p0, A, C, curve_tau.tolist(), curve_p.tolist())
 
 
-def _tie(obs, null):
-    """The core test's tie tolerance, per row: TIE_RTOL x max(|T|, max |T*|)."""
-    from ..inference.permutation import TIE_RTOL
-    obs = np.asarray(obs, dtype=float).reshape(-1, 1)
-    scale = np.maximum(np.abs(obs), np.max(np.abs(null), axis=1, keepdims=True))
-    return TIE_RTOL * scale
-
-
-def _engine_pvalues(perm, values, tf, labels, estimand, engine, resamples, seed, batch_size,
-                    A, C, V, codes, n, n1, n0, w):
-    """Resolve the engine as the core test does; return (engine, p_of(tau), tie, B)."""
-    from ..inference._engines import exact
-
-    resamples = perm._check_resamples(resamples)
-    count = exact.n_assignments(n, n1)
+def _engine_pvalues(values, tf, labels, layout, stats, engine, resamples, seed, batch_size,
+                    A, C, V, draws):
+    """Resolve the engine as the core test does; return (engine, p_of(tau), B)."""
+    resamples = _inference.check_resamples(resamples)
+    count = _inference.n_assignments(layout.n, layout.n1)
+    limit = _inference.MAX_ASSIGNMENTS
     if engine == "auto":
-        engine = ("exact" if count is not None and count <= min(resamples, exact.MAX_ASSIGNMENTS)
+        engine = ("exact" if count is not None and count <= min(resamples, limit)
                   else "monte_carlo")
-    if engine == "exact" and (count is None or count > exact.MAX_ASSIGNMENTS):
+    if engine == "exact" and (count is None or count > limit):
         raise InputError(f"`engine` 'exact' would enumerate {count or 'over 1e300'} assignments "
-                         f"(limit {exact.MAX_ASSIGNMENTS:,}); use engine 'monte_carlo'")
+                         f"(limit {limit:,}); use engine 'monte_carlo'")
     if engine == "normal":
-        return "normal", lambda tau: _p_normal(A, C, V, tau), None, 0
+        return "normal", lambda tau: _p_normal(A, C, V, tau), 0
     if engine == "exact":
-        totals = np.stack([np.bincount(codes, weights=values[:, j], minlength=len(n))
-                           for j in range(2)])
-        sums = exact.enumerate_exposed_sums(values, tf.astype(np.int64), codes, len(n))
-        a_null = _stat_from_sums(sums[0], totals[0], n1, n0, w)
-        c_null = _stat_from_sums(sums[1], totals[1], n1, n0, w)
-        return ("exact", lambda tau: _p_two_sided_exact(A, C, a_null, c_null, tau, _tie),
-                _tie, int(a_null.size))
+        sums = _inference.enumerate_exposed_sums(values, tf.astype(np.int64), layout.codes,
+                                                 layout.n_strata)
+        a_null, c_null = stats[0](sums[0:1]), stats[1](sums[1:2])
+        return ("exact",
+                lambda tau: _p_two_sided_exact(A, C, a_null, c_null, tau, tie_tolerance),
+                int(a_null.size))
     # the core engine's shuffles, shared by both columns (rows sorted by r_y first, so the
     # shuffles of r_y are those of the core test with the same seed)
-    _, null = perm.null_statistics(values, tf.astype(np.int8), labels, estimand=estimand,
-                                   resamples=resamples, seed=seed, batch_size=batch_size)
+    _, null = _inference.null_statistics(values, tf.astype(np.int8), labels,
+                                         estimand=layout.estimand, resamples=resamples,
+                                         seed=seed, batch_size=batch_size, draws=draws,
+                                         layout=layout)
     a_null, c_null = null[0], null[1]
-    return ("monte_carlo", lambda tau: _p_two_sided(A, C, a_null, c_null, tau, _tie), _tie,
+    return ("monte_carlo", lambda tau: _p_two_sided(A, C, a_null, c_null, tau, tie_tolerance),
             int(resamples))

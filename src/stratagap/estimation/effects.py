@@ -36,7 +36,7 @@ from . import _within_strata as _lin
 from ..errors import InputError, ModelWarning
 from ._estimate import (MATCHED_SET_MAX, Estimate, StratifiedEstimate, _between_set_variance,
                         _check_alpha, _check_estimand, _check_labels, _check_X, _check_yt,
-                        _matched_sets, _outcome_kind, _strata, _weights)
+                        _layout, _matched_sets, _outcome_kind, _strata)
 from ._inversion import ConstantEffect, constant_effect
 from ._mantel_haenszel import mantel_haenszel
 
@@ -111,7 +111,7 @@ def crude(y, t, outcome_type, *, alpha=0.05) -> Estimate:
 # --------------------------------------------------------------------------- headline
 def stratified_regression(y, t, X, labels, *, estimand, measure="difference", alpha=0.05,
                           interaction_min_extra=2, population=None, outcome_type=None,
-                          names=None) -> StratifiedEstimate:
+                          names=None, layout=None) -> StratifiedEstimate:
     """Subclassification with regression adjustment within strata (the headline estimate).
 
     Parameters
@@ -136,6 +136,9 @@ def stratified_regression(y, t, X, labels, *, estimand, measure="difference", al
         Default: binary when every value is 0 or 1.
     names : list of str, optional
         Column names of ``X`` for the recorded choices.
+    layout : :class:`stratagap._base.layout.StratumLayout`, optional
+        The caller's layout of the rows with ``labels >= 0`` for ``estimand`` (its weights are
+        used); None builds it here.
 
     Returns
     -------
@@ -178,8 +181,9 @@ def stratified_regression(y, t, X, labels, *, estimand, measure="difference", al
         raise InputError(f"`measure` {measure!r} needs a binary (0/1) outcome; use "
                          "measure='difference' for a continuous outcome")
     names = list(names) if names is not None else [f"x{j}" for j in range(X.shape[1])]
-    ids, n1, n0 = _strata(t, labels)
-    w = _weights(n1, n0, estimand)
+    _strata(t, labels)  # every stratum holds both groups
+    layout = _layout(t, labels, estimand, layout)
+    ids, n1, n0, w = layout.ids, layout.n1, layout.n0, layout.weights
     matched = _matched_sets(n1, n0)
     fits = []
     for s in ids:
@@ -282,21 +286,23 @@ def _ratio(measure, p1, p0, w, covs, alpha, matched, a, tau):
 
 # --------------------------------------------------------------------------- plain
 def plain_stratified_difference(y, t, labels, *, estimand, alpha=0.05,
-                                population=None) -> Estimate:
+                                population=None, layout=None) -> Estimate:
     """Stratum-weighted difference of group means, ``sum_s w_s (ybar1_s - ybar0_s)``.
 
     Variance: Neyman, ``sum_s w_s^2 (s1^2/n1 + s0^2/n0)`` (Imbens & Rubin 2015, ch. 9);
     a stratum with a group of one unit uses its pooled within-stratum variance for both groups;
     when every stratum is a pair or matched set, the between-set variance of the within-set
     differences (Imbens & Rubin 2015, ch. 10) as in :func:`stratified_regression`.
+    ``layout``: as for :func:`stratified_regression`.
     """
     alpha = _check_alpha(alpha)
     estimand = _check_estimand(estimand)
     y, t = _check_yt(y, t)
     labels = _check_labels(labels, len(y))
     kind = _outcome_kind(y, None)
-    ids, n1, n0 = _strata(t, labels)
-    w = _weights(n1, n0, estimand)
+    _strata(t, labels)  # every stratum holds both groups
+    layout = _layout(t, labels, estimand, layout)
+    ids, n1, n0, w = layout.ids, layout.n1, layout.n0, layout.weights
     res = [_lin.difference_of_means(y[labels == s], t[labels == s].astype(float)) for s in ids]
     tau = np.array([r[1] for r in res])
     v = np.array([r[2][1, 1] for r in res])

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from .._base.layout import stratum_codes as _codes
 from ..errors import InputError
 
 MAX_RESAMPLES = 10_000_000
@@ -46,22 +47,10 @@ def _clean(values, t, labels, *, columns_ok=True):
     return v[keep], tk, codes.astype(np.int64), int(uniq.size), keep
 
 
-def _codes(lab):
-    """Sorted distinct labels and each row's position among them (bincount when compact)."""
-    if lab.size and 0 <= lab.min() and lab.max() < 4 * lab.size + 1024:
-        present = np.bincount(lab) > 0
-        uniq = np.flatnonzero(present)
-        lookup = np.cumsum(present) - 1
-        return uniq, lookup[lab]
-    return np.unique(lab, return_inverse=True)
-
-
-def _weights(n, n1, estimand):
-    if estimand == "ate":
-        return n / n.sum()  # ATE: stratum share of units
-    if estimand == "att":
-        return n1 / n1.sum()  # ATT: stratum share of exposed units
-    raise InputError(f"`estimand` must be 'ate' or 'att', got {estimand!r}")
+def _check_estimand(estimand):
+    if estimand not in ("ate", "att"):
+        raise InputError(f"`estimand` must be 'ate' or 'att', got {estimand!r}")
+    return estimand
 
 
 def _check_choice(value, allowed, name):

@@ -2,15 +2,12 @@
 
 Every statistic here is a function of the per-stratum sums ``S_s`` of the value columns over
 the exposed units (the sufficient statistics of a within-stratum shuffle), so one engine core
-(:func:`null_exposed_sums`) serves them all:
-
-* ``"mean_difference"``: ``T = sum_s w_s (S_s (1/n1_s + 1/n0_s) - R_s / n0_s)``, the
-  estimand-weighted difference of exposed and reference means (``R_s`` the stratum total;
-  ATE ``w_s = n_s/n``, ATT ``w_s = n1_s/n1``). Linear in the labels; tests the sharp null.
-* ``"studentized"``: the same difference divided by ``sqrt(sum_s w_s^2 (s1_s^2/n1_s +
-  s0_s^2/n0_s))``; asymptotically valid for the weak null of zero average effect (Wu & Ding
-  2021; Chung & Romano 2013). Needs at least 2 units of each group per stratum.
-* ``"sum"``: ``T = sum_s S_s``; for a binary outcome the Mantel--Haenszel (CMH) statistic.
+(:func:`null_exposed_sums`) serves them all. The statistics (``"mean_difference"``, the
+default; ``"studentized"``, for the weak null, Wu & Ding 2021, Chung & Romano 2013; ``"sum"``,
+the Mantel--Haenszel statistic for a binary outcome), their permutation moments and the tie
+rule live in :mod:`stratagap.inference.statistic`; the stratum sizes and estimand weights in
+the :class:`~stratagap._base.layout.StratumLayout`; the shared Monte Carlo draws in
+:mod:`stratagap.inference.draws`.
 
 Engines: ``"exact"`` (enumeration of all assignments when there are few, or the exact
 convolution of hypergeometrics for the binary sum), ``"monte_carlo"`` (see
@@ -32,129 +29,33 @@ Mantel, N. & Haenszel, W. (1959). JNCI 22:719-748.
 
 from __future__ import annotations
 
-import contextvars
-import hashlib
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from ._engines import exact as _exact
-from ._engines import monte_carlo as _mc
 from ._engines import normal as _normal
-from ._checks import (MAX_RESAMPLES, _check_batch, _check_choice, _check_resamples,
-                             _clean, _codes, _weights)
+from ._checks import (MAX_RESAMPLES, _check_batch, _check_choice, _check_estimand,
+                      _check_resamples, _clean, _codes)
+from .draws import SharedDraws, mc_batches, shared_draws
+from .statistic import STATISTICS, TIE_RTOL, Statistic, studentized_columns, tie_tolerance
 from ..errors import InputError
+from .._base.layout import StratumLayout, layout_for
 from .._base.rng import check_seed
 
 __all__ = ["PermutationResult", "residualize", "null_exposed_sums", "null_statistics",
-           "normal_moments", "stratified_test", "shared_draws", "STATISTICS", "ENGINES",
-           "ALTERNATIVES", "MAX_RESAMPLES"]
+           "normal_moments", "stratified_test", "shared_draws", "SharedDraws", "STATISTICS",
+           "ENGINES", "ALTERNATIVES", "MAX_RESAMPLES", "TIE_RTOL"]
 
-STATISTICS = ("mean_difference", "studentized", "sum")
 ENGINES = ("auto", "exact", "monte_carlo", "normal")
 ALTERNATIVES = ("two-sided", "greater", "less")
 SHARP_NULL = "sharp null: no effect for any unit"
 WEAK_NULL = "weak null: zero average effect (asymptotic)"
-#: Relative tolerance for ties between a resampled and the observed statistic (as scipy does).
-TIE_RTOL = 1e-13
 #: Why the normal engine is never chosen automatically (reported on every result).
 NORMAL_NOTE = ("normal engine not chosen automatically: deciding that it cannot change the "
                "conclusion at alpha needs a Berry-Esseen-type bound for sums sampled without "
                "replacement with a stated constant, and none is cited here with confidence; "
                "its p-value is reported beside the chosen engine's (normal_p_value)")
-#: Largest array of null sums (bytes) that :func:`shared_draws` keeps; beyond it, no sharing.
-SHARED_BYTES = 256 * 2**20
-
-_SHARED = contextvars.ContextVar("stratagap_shared_draws", default=None)
-
-
-class shared_draws:  # noqa: N801 - used like a function: ``with shared_draws(...):``
-    """Within this block, Monte Carlo null sums are computed once per value column and reused.
-
-    The draws of the Monte Carlo engine depend only on the stratum sizes, the exposed counts,
-    the seed and the number of resamples; a column's exposed sums depend, besides, only on the
-    column's values in the engine's row order (sorted within strata). So a column's null sums
-    are keyed by exactly those, and a later call (any statistic, any function of this module)
-    that needs the same column gets the same numbers it would have computed: results are
-    bit-identical to running the calls separately. ``columns`` (raw rows of ``t``/``labels``)
-    and the centred values and squares of ``studentized`` columns (what the studentized
-    statistic draws) are drawn together with the first Monte Carlo call on the same ``t`` and
-    ``labels``, so one pass over the permutations serves several tests (e.g. the default test,
-    its studentized companion and the constant-effect inversion). Arrays above
-    ``SHARED_BYTES`` are not kept (the calls then run as usual).
-
-    The object can be entered again later (e.g. around a second stage): its cache lives as
-    long as the object.
-    """
-
-    def __init__(self, t=None, labels=None, columns=(), studentized=()):
-        extra = None
-        if t is not None:
-            extra = (np.asarray(t), np.asarray(labels),
-                     [np.asarray(c, dtype=float) for c in columns],
-                     [np.asarray(c, dtype=float) for c in studentized])
-        self._state = {"cache": {}, "extra": extra}
-        self._tokens = []
-
-    def __enter__(self):
-        self._tokens.append(_SHARED.set(self._state))
-        return self
-
-    def __exit__(self, *exc):
-        _SHARED.reset(self._tokens.pop())
-        return False
-
-
-def _centred(col, codes, n_strata):
-    """Centred values and squares of one column within strata (the studentized statistic)."""
-    n = np.bincount(codes, minlength=n_strata).astype(float)
-    mean_s = np.bincount(codes, weights=col, minlength=n_strata) / n
-    c = col - mean_s[codes]  # centring within strata avoids cancellation in s^2
-    return np.column_stack([c, c**2])
-
-
-def _column_keys(plan, v, seed, resamples):
-    tail = (plan.n.tobytes() + plan.n1.tobytes()
-            + f"|{seed}|{resamples}|{plan.binary}".encode())
-    return [hashlib.blake2b(np.ascontiguousarray(v[plan.order, j]).tobytes() + tail,
-                            digest_size=20).digest() for j in range(v.shape[1])]
-
-
-def _batches(v, tk, codes, n_strata, resamples, seed, batch_size, progress, workers, raw):
-    """Monte Carlo batches ``(lo, hi, sums (k, S, hi - lo))``; reused under shared_draws."""
-    state = _SHARED.get()
-    k = v.shape[1]
-    if state is None or 8 * (k + 4) * n_strata * resamples > SHARED_BYTES:
-        plan = _mc.make_plan(v, tk, codes, n_strata)
-        yield from _mc.iter_batches(plan, resamples, seed, batch_size, progress, workers)
-        return
-    plan = _mc.make_plan(v, tk, codes, n_strata)
-    keys = _column_keys(plan, v, seed, resamples)
-    cache = state["cache"]
-    if not all(key in cache for key in keys):
-        extra, full = state["extra"], v
-        if (extra is not None and not plan.binary and np.array_equal(extra[0], raw[0])
-                and np.array_equal(extra[1], raw[1])):
-            keep = raw[2]
-            more = [c[keep][:, None] for c in extra[2]]
-            more += [_centred(c[keep], codes, n_strata) for c in extra[3]]
-            more = np.column_stack([v[:, :0]] + more)
-            # a column the request draws anyway is not drawn twice
-            more = more[:, [j for j in range(more.shape[1])
-                            if not any(np.array_equal(more[:, j], v[:, i])
-                                       for i in range(k))]]
-            full = np.column_stack([v, more])
-            plan = _mc.make_plan(full, tk, codes, n_strata)  # rows sorted by v first: same
-        sums = np.empty((full.shape[1], n_strata, resamples))
-        for lo, hi, part in _mc.iter_batches(plan, resamples, seed, batch_size, progress,
-                                             workers):
-            sums[:, :, lo:hi] = part
-        for key, j in zip(_column_keys(plan, full, seed, resamples), range(full.shape[1])):
-            cache.setdefault(key, sums[j])
-    elif progress is not None:
-        progress(resamples, resamples)
-    yield 0, resamples, np.stack([cache[key] for key in keys])
-
 
 def residualize(y, X, labels) -> np.ndarray:
     """Residuals of ``y`` on ``X`` with stratum fixed effects (never uses the exposure).
@@ -212,32 +113,32 @@ def null_exposed_sums(values, t, labels, resamples, seed, batch_size=None, progr
     """
     v, tk, codes, n_strata, keep = _clean(values, t, labels)
     resamples = _check_resamples(resamples)
+    layout = StratumLayout.from_codes(codes, tk, "ate", n_strata=n_strata)  # sizes only
     out = np.empty((v.shape[1], n_strata, resamples))
-    for lo, hi, sums in _batches(v, tk, codes, n_strata, resamples, check_seed(seed),
-                                 _check_batch(batch_size), progress, workers, (t, labels, keep)):
+    for lo, hi, sums in mc_batches(v, tk, layout, resamples, check_seed(seed),
+                                 _check_batch(batch_size), progress, workers, (t, labels, keep),
+                                 None):
         out[:, :, lo:hi] = sums
     return out
 
 
-def _prepare(values, t, labels, estimand, statistic):
+def _layout(layout, codes, n_strata, tk, estimand):
+    """The given layout of the analysed rows (checked), or one built from their codes."""
+    if layout is None:
+        return StratumLayout.from_codes(codes, tk, estimand, n_strata=n_strata)
+    return layout_for(layout, codes, tk, estimand, n_strata=n_strata)
+
+
+def _prepare(values, t, labels, estimand, statistic, layout=None):
     v, tk, codes, n_strata, keep = _clean(values, t, labels, columns_ok=False)
-    n = np.bincount(codes, minlength=n_strata).astype(float)
-    n1 = np.bincount(codes, weights=tk, minlength=n_strata)
-    w = _weights(n, n1, estimand)
+    layout = _layout(layout, codes, n_strata, tk, _check_estimand(estimand))
     if statistic == "studentized":
-        if np.any(n1 < 2) or np.any(n - n1 < 2):
+        if np.any(layout.n1 < 2) or np.any(layout.n0 < 2):
             raise InputError("`statistic` 'studentized' needs at least 2 exposed and 2 "
                              "reference units in every stratum; use 'mean_difference' or "
                              "merge strata")
-        v = _centred(v[:, 0], codes, n_strata)
-    totals = np.stack([np.bincount(codes, weights=v[:, j], minlength=n_strata)
-                       for j in range(v.shape[1])])
-    return v, tk, codes, n_strata, _normal.Design(n, n1, w, totals, statistic), keep
-
-
-def _exposed_sums(v, tk, codes, n_strata):
-    return np.stack([np.bincount(codes, weights=v[:, j] * tk, minlength=n_strata)
-                     for j in range(v.shape[1])])
+        v = studentized_columns(v[:, 0], layout)
+    return v, tk, layout, Statistic.of(statistic, layout, v), keep
 
 
 def normal_moments(values, t, labels, estimand, statistic="mean_difference"):
@@ -245,19 +146,17 @@ def normal_moments(values, t, labels, estimand, statistic="mean_difference"):
 
     For ``"mean_difference"`` and ``"sum"`` these are exact (linear statistics:
     ``E S_s = n1_s R_s / n_s``, ``Var S_s = n1_s n0_s / (n_s (n_s - 1)) sum_i (v_i - vbar_s)^2``);
-    for ``"studentized"`` the asymptotic N(0, 1) moments ``(0, 1)``.
+    for ``"studentized"`` the asymptotic N(0, 1) moments ``(0, 1)``. See
+    :mod:`stratagap.inference.statistic`.
     """
     _check_choice(statistic, STATISTICS, "statistic")
-    v, _, codes, n_strata, design, _ = _prepare(values, t, labels, estimand, statistic)
-    return _normal.moments(v, codes, n_strata, design)
+    v, _, _, stat, _ = _prepare(values, t, labels, estimand, statistic)
+    return stat.null_moments(v)
 
 
 def _tail_p(null, observed, weights=None):
     """P(T* >= T_obs), P(T* <= T_obs) with a relative tie tolerance (scipy does the same)."""
-    finite = np.isfinite(null)
-    scale = max(abs(observed) if np.isfinite(observed) else 0.0,
-                float(np.max(np.abs(null[finite]))) if finite.any() else 0.0)
-    gamma = TIE_RTOL * scale
+    gamma = tie_tolerance(observed, null)
     ge, le = null >= observed - gamma, null <= observed + gamma
     if weights is None:
         return int(ge.sum()), int(le.sum())
@@ -357,7 +256,8 @@ def _pick(alternative, pg, pl):
 
 def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
                     alternative="two-sided", engine="auto", resamples=10000, seed=0,
-                    batch_size=None, progress=None, workers=None) -> PermutationResult:
+                    batch_size=None, progress=None, workers=None, draws=None,
+                    layout=None) -> PermutationResult:
     """Stratified permutation test of the labels' association with ``values``.
 
     Parameters
@@ -377,6 +277,12 @@ def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
     progress : optional callable ``progress(n_done, n_total)`` called after each batch
     workers : threads drawing blocks of resamples (None: 1; at most the CPU count); results
         do not depend on it
+    draws : :class:`SharedDraws` or None
+        Monte Carlo null sums shared with other calls (:func:`shared_draws`); results are
+        bit-identical to a call without it
+    layout : :class:`stratagap._base.layout.StratumLayout` or None
+        The stratum layout of the analysed rows (labels >= 0) for ``estimand``, when the caller
+        has built it already; None builds it here
 
     Returns
     -------
@@ -398,12 +304,13 @@ def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
     resamples = _check_resamples(resamples)
     seed = check_seed(seed)
     batch_size = _check_batch(batch_size)
-    v, tk, codes, n_strata, design, keep = _prepare(values, t, labels, estimand, statistic)
-    observed = float(design.stat(_exposed_sums(v, tk, codes, n_strata)[:, :, None])[0])
-    mean, var = _normal.moments(v, codes, n_strata, design)
+    v, tk, layout, stat, keep = _prepare(values, t, labels, estimand, statistic, layout)
+    codes, n_strata = layout.codes, layout.n_strata
+    observed = float(stat(layout.exposed_sums(v, tk)[:, :, None])[0])
+    mean, var = stat.null_moments(v)
     npg, npl = _normal.normal_p(observed, mean, var, statistic)
-    log_a = _exact.log_assignments(design.n, design.n1)
-    n_assign = _exact.n_assignments(design.n, design.n1)
+    log_a = _exact.log_assignments(layout.n, layout.n1)
+    n_assign = _exact.n_assignments(layout.n, layout.n1)
     binary_sum = statistic == "sum" and bool(np.all((v == 0) | (v == 1)))
     small = n_assign is not None and n_assign <= _exact.MAX_ASSIGNMENTS
     if engine == "auto":
@@ -424,18 +331,18 @@ def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
         null = np.empty(0)
         pg, pl = npg, npl
     elif engine == "exact" and binary_sum:
-        null, weights = _exact.hypergeometric_sum_pmf(design.n, design.totals[0], design.n1)
+        null, weights = _exact.hypergeometric_sum_pmf(layout.n, stat.totals[0], layout.n1)
         null = null.astype(float)
         pg, pl = _tail_p(null, observed, weights)
     elif engine == "exact":
-        null = design.stat(_exact.enumerate_exposed_sums(v, tk, codes, n_strata))
+        null = stat(_exact.enumerate_exposed_sums(v, tk, codes, n_strata))
         ge, le = _tail_p(null, observed)
         pg, pl = ge / null.size, le / null.size
     else:
         null = np.empty(resamples)
-        for lo, hi, sums in _batches(v, tk, codes, n_strata, resamples, seed, batch_size,
-                                     progress, workers, (t, labels, keep)):
-            null[lo:hi] = design.stat(sums)
+        for lo, hi, sums in mc_batches(v, tk, layout, resamples, seed, batch_size,
+                                     progress, workers, (t, labels, keep), draws):
+            null[lo:hi] = stat(sums)
         ge, le = _tail_p(null, observed)
         pg, pl = (ge + 1) / (resamples + 1), (le + 1) / (resamples + 1)  # Phipson & Smyth 2010
     p = _pick(alternative, pg, pl)
@@ -455,28 +362,26 @@ def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
 
 
 def null_statistics(values, t, labels, *, estimand, resamples, seed, batch_size=None,
-                    progress=None, workers=None):
+                    progress=None, workers=None, draws=None, layout=None):
     """Mean-difference statistics of several value columns under the SAME shuffles.
 
     Returns ``(observed (k,), null (k, B))``. Used by the constant-effect inversion: with
     columns ``r_y`` and ``r_t``, ``T(tau0) = T_y - tau0 T_t`` for every shuffle. Column 0's
     null equals :func:`stratified_test`'s Monte Carlo null for the same seed when column 0 has
-    no ties within strata (rows are sorted by column 0, then the others).
+    no ties within strata (rows are sorted by column 0, then the others). ``draws`` and
+    ``layout`` as for :func:`stratified_test`.
     """
     v, tk, codes, n_strata, keep = _clean(values, t, labels)
     resamples = _check_resamples(resamples)
-    n = np.bincount(codes, minlength=n_strata).astype(float)
-    n1 = np.bincount(codes, weights=tk, minlength=n_strata)
-    w = _weights(n, n1, estimand)
-    totals = np.stack([np.bincount(codes, weights=v[:, j], minlength=n_strata)
-                       for j in range(v.shape[1])])
-    designs = [_normal.Design(n, n1, w, totals[j:j + 1], "mean_difference")
-               for j in range(v.shape[1])]
-    obs_sums = _exposed_sums(v, tk, codes, n_strata)
-    observed = np.array([d.stat(obs_sums[j:j + 1, :, None])[0] for j, d in enumerate(designs)])
+    layout = _layout(layout, codes, n_strata, tk, _check_estimand(estimand))
+    totals = layout.totals(v)
+    stats = [Statistic("mean_difference", layout, totals[j:j + 1]) for j in range(v.shape[1])]
+    obs_sums = layout.exposed_sums(v, tk)
+    observed = np.array([st(obs_sums[j:j + 1, :, None])[0] for j, st in enumerate(stats)])
     null = np.empty((v.shape[1], resamples))
-    for lo, hi, sums in _batches(v, tk, codes, n_strata, resamples, check_seed(seed),
-                                 _check_batch(batch_size), progress, workers, (t, labels, keep)):
-        for j, d in enumerate(designs):
-            null[j, lo:hi] = d.stat(sums[j:j + 1])
+    for lo, hi, sums in mc_batches(v, tk, layout, resamples, check_seed(seed),
+                                 _check_batch(batch_size), progress, workers, (t, labels, keep),
+                                 draws):
+        for j, st in enumerate(stats):
+            null[j, lo:hi] = st(sums[j:j + 1])
     return observed, null

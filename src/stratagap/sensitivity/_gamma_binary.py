@@ -15,12 +15,13 @@ from scipy import stats
 
 from ._nchyper import _nch_log_pmf, _nch_moments, _normal_sf
 
-def _binary_setup(values, t, labels, sign):
-    _, inv = np.unique(labels, return_inverse=True)
+
+def _binary_setup(values, t, layout, sign):
+    """Per-stratum (n, n1, events) from the stratum layout, and the observed exposed count."""
     y = values if sign > 0 else 1.0 - values            # "less": count exposed non-events
-    n = np.bincount(inv)
-    n1 = np.bincount(inv, weights=t).astype(np.int64)
-    m = np.bincount(inv, weights=y).astype(np.int64)
+    n = layout.n.astype(np.int64)
+    n1 = layout.n1.astype(np.int64)
+    m = layout.totals(y[:, None])[0].astype(np.int64)
     count = float(np.sum(y * t))
     return list(zip(n.tolist(), n1.tolist(), m.tolist())), count
 

@@ -31,6 +31,8 @@ from scipy import optimize
 
 from ..errors import InputError
 from .._base.jsonable import jsonable as _jsonable
+from .._base.layout import layout_for
+from ..inference import Statistic
 from ._nchyper import _cut_moments, _normal_sf, _perm_moments
 from ._gamma_binary import _binary_exact_p, _binary_normal_p, _binary_setup, _convolution_cost
 
@@ -170,30 +172,21 @@ def _check(values, t, labels, estimand, statistic, direction):
     return values[keep], t[keep].astype(np.int8), labels[keep].astype(np.int64)
 
 
-def _design(values, t, labels, estimand, statistic, sign):
+def _design(values, t, layout, statistic, sign):
     """Per-stratum sorted values and the linear map from exposed sums S_s to the statistic."""
-    _, inv = np.unique(labels, return_inverse=True)
-    n_s = np.bincount(inv)
-    n1_s = np.bincount(inv, weights=t).astype(np.int64)
-    n0_s = n_s - n1_s
-    if statistic == "mean_difference" and ((n1_s == 0) | (n0_s == 0)).any():
-        bad = int(np.flatnonzero((n1_s == 0) | (n0_s == 0))[0])
+    inv = layout.codes
+    n_s, n1_s = layout.n.astype(np.int64), layout.n1.astype(np.int64)
+    both = layout.has_both_groups()
+    if statistic == "mean_difference" and not both.all():
+        bad = int(np.flatnonzero(~both)[0])
         raise InputError(f"`labels`: stratum {bad} lacks an exposed or a reference unit; the mean difference "
                          "needs both groups in every stratum (set such rows aside with label -1)")
-    w = n_s / n_s.sum() if estimand == "ate" else n1_s / max(n1_s.sum(), 1)  # ATE n_s/n, ATT n1_s/n1
     v = sign * values
-    S = np.bincount(inv, weights=v * t, minlength=len(n_s))
-    R = np.bincount(inv, weights=v, minlength=len(n_s))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        if statistic == "mean_difference":
-            coef = w * (1.0 / n1_s + 1.0 / n0_s)  # T = sum w_s [S_s (1/n1s + 1/n0s) - R_s/n0s]
-            const_s = -w * R / n0_s
-        else:
-            coef = np.ones(len(n_s))
-            const_s = np.zeros(len(n_s))
-    d = _Design(n_strata=len(n_s))
+    S = layout.exposed_sums(v[:, None], t)[0]
+    # T = sum_s (coef_s S_s + const_s), the core test's statistic in linear form
+    coef, const_s = Statistic.of(statistic, layout, v[:, None]).linear_form()
+    d = _Design(n_strata=layout.n_strata)
     d.observed = float(np.sum(coef * S + const_s))
-    both = (n1_s > 0) & (n0_s > 0)
     # strata with one group only: their S_s is fixed by design
     d.const = float(np.sum(const_s) + np.sum((coef * S)[~both]))
     order = np.lexsort((v, inv))
@@ -238,21 +231,22 @@ def _bracket_p(d, gamma, cache=None):
 class _Bounder:
     """Callable p-value bound at one Gamma, prepared once for a data set."""
 
-    def __init__(self, values, t, labels, estimand, statistic, direction):
+    def __init__(self, values, t, labels, estimand, statistic, direction, layout=None):
         values, t, labels = _check(values, t, labels, estimand, statistic, direction)
         self.statistic, self.estimand = statistic, estimand
+        layout = layout_for(layout, labels, t, estimand)  # rows set aside: dropped by _check
         if direction == "auto":
-            d = _design(values, t, labels, estimand, statistic, 1.0)
+            d = _design(values, t, layout, statistic, 1.0)
             null_mean = sum(c @ _perm_moments(n, n1, V)[0] for (n, n1, V), c in zip(d.groups, d.coef))
             direction = "greater" if d.observed - d.const >= null_mean else "less"
         self.direction = direction
         sign = 1.0 if direction == "greater" else -1.0
         self.binary = statistic == "sum" and np.isin(values, (0.0, 1.0)).all()
-        self.design = _design(values, t, labels, estimand, statistic, sign)
+        self.design = _design(values, t, layout, statistic, sign)
         self.moments = "exact"
         self._cache = {}
         if self.binary:
-            self.raw, self.count = _binary_setup(values, t, labels, sign)
+            self.raw, self.count = _binary_setup(values, t, layout, sign)
             self.method = "exact" if _convolution_cost(self.raw) <= EXACT_CONVOLUTION_BUDGET else "normal_binary"
         else:
             self.method = "bracket"
@@ -282,7 +276,7 @@ def _check_gammas(gammas):
 
 
 def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_difference", direction="greater",
-                 gammas=DEFAULT_GAMMAS) -> GammaBounds:
+                 gammas=DEFAULT_GAMMAS, layout=None) -> GammaBounds:
     """Upper bounds on the one-sided p-value of the stratified test for each Gamma.
 
     Parameters
@@ -302,6 +296,8 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
         Tail bounded; "less" bounds P(T <= t) by applying the bound to -values; "auto" takes the
         side of the observed effect.
     gammas : sequence of float >= 1
+    layout : :class:`stratagap._base.layout.StratumLayout`, optional
+        The caller's layout of the rows with ``labels >= 0``; None builds it here.
 
     Returns
     -------
@@ -322,7 +318,7 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
     moments of the noncentral hypergeometric; from memory). IARC, Lyon.
     """
     gammas = _check_gammas(gammas)
-    b = _Bounder(values, t, labels, estimand, statistic, direction)
+    b = _Bounder(values, t, labels, estimand, statistic, direction, layout)
     p_up, p_sep = zip(*(b(g) for g in gammas))
     return GammaBounds(gammas=list(gammas), p_upper=list(p_up), p_separable=list(p_sep), method=b.method,
                        method_text=_METHOD_TEXT[b.method], statistic=statistic, direction=b.direction,
@@ -349,12 +345,12 @@ def _root(f, alpha, cap):
 
 
 def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_difference", direction="auto",
-                      alpha=0.05, two_sided=False, cap=GAMMA_CAP) -> SensitivityValue:
+                      alpha=0.05, two_sided=False, cap=GAMMA_CAP, layout=None) -> SensitivityValue:
     """The Gamma at which the one-sided p-value bound reaches alpha (root finding on log Gamma).
 
     Parameters
     ----------
-    values, t, labels, estimand, statistic, direction
+    values, t, labels, estimand, statistic, direction, layout
         As for :func:`gamma_bounds`; the default direction "auto" is the side of the observed effect.
     alpha : float, default 0.05
         Level. With ``two_sided=True`` (the core test was two-sided) each side uses alpha/2.
@@ -383,7 +379,7 @@ def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_diff
     level = alpha / 2.0 if two_sided else alpha
     note = (f"one-sided bound at alpha/2 = {level:g} per side (the core test is two-sided)" if two_sided
             else f"one-sided bound at alpha = {level:g}")
-    b = _Bounder(values, t, labels, estimand, statistic, direction)
+    b = _Bounder(values, t, labels, estimand, statistic, direction, layout)
     g_up, flag_up = _root(lambda g: b(g)[0], level, cap)
     g_sep, flag_sep = _root(lambda g: b(g)[1], level, cap)
     return SensitivityValue(gamma=g_up, gamma_separable=g_sep, flag=flag_up, flag_separable=flag_sep,

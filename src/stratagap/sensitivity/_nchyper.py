@@ -12,6 +12,8 @@ import math
 import numpy as np
 from scipy import special, stats
 
+from ..inference.statistic import exposed_sum_moments
+
 #: Largest number of (K, x) cells for which moments are computed exactly; beyond it the
 #: large-stratum approximation is used (recorded as ``moments`` on the result).
 EXACT_MOMENT_CELLS = 500_000
@@ -142,10 +144,17 @@ def _cut_moments(n, n1, V, gamma, cache=None):
 
 
 def _perm_moments(n, n1, V):
-    """Randomization mean and variance of S_s (Gamma = 1): n1 R/n and n1 n0/(n(n-1)) sum (v - vbar)^2."""
+    """Randomization mean and variance of S_s (Gamma = 1) for a group of equal-size strata.
+
+    The closed form is :func:`stratagap.inference.statistic.exposed_sum_moments`; only the
+    totals and squared deviations are summed here, along the rows of the grouped values ``V``
+    (G, n) (a different summation order from the engine's per-stratum bincount, kept so the
+    bounds stay bit-identical).
+    """
     R = V.sum(axis=1)
     ss = ((V - V.mean(axis=1, keepdims=True)) ** 2).sum(axis=1)
-    return n1 * R / n, n1 * (n - n1) / (n * (n - 1)) * ss
+    return exposed_sum_moments(n, n1, R, ss)
+
 
 def _normal_sf(diff, var):
     if var <= 0.0:

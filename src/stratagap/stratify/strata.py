@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from .._base.layout import ESTIMANDS, StratumLayout
 from ..errors import InputError, StrataWarning
 from .scores import check_score
 
@@ -327,18 +328,19 @@ def _user_strata(score, t, estimand, user_labels):
 
 
 def _table(score, t, labels, estimand):
-    w = stratum_weights(labels, t, estimand)
+    _, layout = _checked_layout(labels, t, estimand)
     rows = []
-    for s in range(w.size):
-        m = labels == s
-        n1 = int(t[m].sum())
+    for s in range(layout.n_strata):
+        m = labels == layout.ids[s]
         rows.append({"stratum": s, "score_low": float(score[m].min()),
-                     "score_high": float(score[m].max()), "n_exposed": n1,
-                     "n_reference": int(m.sum()) - n1, "n": int(m.sum()), "weight": float(w[s])})
+                     "score_high": float(score[m].max()), "n_exposed": int(layout.n1[s]),
+                     "n_reference": int(layout.n0[s]), "n": int(layout.n[s]),
+                     "weight": float(layout.weights[s])})
     return rows
 
 
-def _counts(labels, t):
+def _checked_layout(labels, t, estimand):
+    """Rows in a stratum (label >= 0) and their layout, after checking the arguments."""
     labels = np.asarray(labels)
     t = np.asarray(t)
     if labels.shape != t.shape:
@@ -347,41 +349,42 @@ def _counts(labels, t):
     ok = labels >= 0
     if not ok.any():
         raise InputError("no unit is in a stratum (all labels are -1)")
-    S = int(labels[ok].max()) + 1
-    n1 = np.bincount(labels[ok], weights=t[ok], minlength=S)
-    n = np.bincount(labels[ok], minlength=S).astype(float)
-    return S, n1, n - n1, n
+    est = str(estimand).lower()
+    if est not in ESTIMANDS:
+        raise InputError(f"`--estimand` must be 'ate' or 'att', got {estimand!r}")
+    return ok, StratumLayout.build(labels[ok], t[ok], est)
+
+
+def _by_label(layout, a):
+    """Per-stratum values indexed by label 0..max (a label with no unit gets 0)."""
+    out = np.zeros(int(layout.ids.max()) + 1)
+    out[layout.ids] = a
+    return out
 
 
 def stratum_weights(labels, t, estimand) -> np.ndarray:
     """Stratum weights of the estimand: ATE ``n_s / n``, ATT ``n1_s / n1`` (summing to 1).
 
-    Units labelled -1 are ignored.
+    Indexed by label ``0..max(labels)``; units labelled -1 are ignored. A thin wrapper over
+    :class:`stratagap._base.layout.StratumLayout`, the one home of these weights.
     """
-    S, n1, n0, n = _counts(labels, t)
-    if str(estimand).lower() == "att":
-        return n1 / n1.sum()
-    if str(estimand).lower() == "ate":
-        return n / n.sum()
-    raise InputError(f"`--estimand` must be 'ate' or 'att', got {estimand!r}")
+    _, layout = _checked_layout(labels, t, estimand)
+    return _by_label(layout, layout.weights)
 
 
 def unit_weights(labels, t, estimand) -> np.ndarray:
     """Per-unit weights so that weighted group means are the stratum-weighted means.
 
     An exposed unit in stratum ``s`` gets ``w_s / n1_s``, a reference unit ``w_s / n0_s``;
-    units labelled -1 get 0. The weights of each group sum to 1.
+    units labelled -1 get 0. The weights of each group sum to 1 (see
+    :meth:`stratagap._base.layout.StratumLayout.unit_weights`).
     """
-    labels = np.asarray(labels)
-    t = np.asarray(t)
-    S, n1, n0, _ = _counts(labels, t)
+    ok, layout = _checked_layout(labels, t, estimand)
+    n1, n0 = _by_label(layout, layout.n1), _by_label(layout, layout.n0)
     if np.any(n1 == 0) or np.any(n0 == 0):
         bad = int(np.flatnonzero((n1 == 0) | (n0 == 0))[0])
         raise InputError(f"stratum {bad} lacks one group; every stratum needs exposed and "
                          "reference units (set it aside with label -1)")
-    w = stratum_weights(labels, t, estimand)
-    out = np.zeros(labels.size)
-    ok = labels >= 0
-    s = labels[ok]
-    out[ok] = np.where(t[ok] == 1, w[s] / n1[s], w[s] / n0[s])
+    out = np.zeros(ok.size)
+    out[ok] = layout.unit_weights(np.asarray(t)[ok])
     return out
