@@ -25,9 +25,9 @@ from .inference import permutation as _permutation
 from .stratify import scores as _scores
 from . import sensitivity as _sensitivity
 from .stratify import strata as _strata
-from .errors import (InputError, MissingDataWarning, ModelWarning, StrataWarning,
-                      StratagapWarning)
-from .result import AnalysisResult, CAUTIONS, versions
+from .errors import InputError, MissingDataWarning, StrataWarning, StratagapWarning
+from .result import (AnalysisResult, CAUTIONS, TEST_LABELS, ParticipantFlow, PermutationTests,
+                     PreparedSummary, versions)
 from .spec import AnalysisSpec
 from .render.verdict import write_verdict
 
@@ -161,15 +161,29 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
         warnings.warn("Censoring weights enter the cross-check row 'IPW x censoring weights'; the "
                       "stratified headline and the permutation test use the complete cases "
                       "unweighted.", MissingDataWarning)
-    heterogeneity = _heterogeneity_block(adjusted.per_stratum, y, t, labels, binary)
+    heterogeneity = _heterogeneity.heterogeneity_across_strata(adjusted.per_stratum, y, t, labels,
+                                                               binary=binary)
 
-    sensitivity = _sensitivity_block(spec, terms, tests, adjusted, risk_ratio, y, t, X, labels,
-                                     binary)
-    negative = _negative_control(spec, prepared, used, t, X, labels)
-    flow = _flow(prepared, overlap, strata, used)
+    sensitivity = _sensitivity.sensitivity_analysis(
+        tests["values"], t, labels, X, y, terms, observed=tests["main"].statistic,
+        statistic="sum" if spec.statistic == "sum" else "mean_difference",
+        estimand=spec.estimand, alternative=spec.alternative, alpha=spec.alpha,
+        gammas=spec.gamma_grid, adjusted=adjusted, risk_ratio=risk_ratio, binary=binary)
+    negative = None if prepared.negative_control is None else _sensitivity.negative_control_check(
+        prepared.negative_control[used], t, X, labels, column=spec.negative_control,
+        names=prepared.design_names, estimand=spec.estimand, alpha=spec.alpha,
+        engine=spec.engine, resamples=spec.resamples, seed=spec.seed,
+        batch_size=spec.batch_size, interaction_min_extra=spec.interaction_min_extra)
+    flow = ParticipantFlow.from_stages(prepared.flow, trimmed_by_group=overlap.set_aside,
+                                       strata_set_aside_by_group=getattr(strata, "set_aside", {}),
+                                       t_analysed=t)
+    test_set = PermutationTests(main=tests["main"], statistic_kind=spec.statistic,
+                                statistic_label=TEST_LABELS[spec.statistic],
+                                studentized=tests.get("studentized"),
+                                sum_statistic=tests.get("sum"))
     parts = dict(
         prepared_summary=_prepared_summary(prepared, used), flow=flow, propensity=propensity,
-        overlap=overlap, strata=strata, balance=balance, tests=tests, crude=crude,
+        overlap=overlap, strata=strata, balance=balance, tests=test_set, crude=crude,
         adjusted=adjusted, plain=plain, constant_effect=constant, mantel_haenszel=mh,
         risk_ratio=risk_ratio, cross_checks=cross, heterogeneity=heterogeneity,
         sensitivity=sensitivity, negative_control=negative,
@@ -227,97 +241,9 @@ def _tests(spec, y, t, X, labels, binary, progress) -> dict:
     return out
 
 
-def _heterogeneity_block(per_stratum, y, t, labels, binary) -> dict:
-    """Cochran's Q (and Breslow-Day for binary outcomes); undefined with a single stratum."""
-    usable = [s for s in per_stratum if s["se"] is not None and np.isfinite(s["se"]) and s["se"] > 0]
-    if len(usable) < 2:
-        return {"cochran_q": None, "note": "fewer than 2 strata with a standard error: "
-                                           "heterogeneity across strata is not defined"}
-    out = {"cochran_q": _heterogeneity.cochran_q([s["estimate"] for s in usable],
-                                                 [s["se"] for s in usable]).to_dict()}
-    if binary:
-        out["breslow_day"] = _heterogeneity.breslow_day(y, t, labels).to_dict()
-    return out
-
-
-def _sensitivity_block(spec, terms, tests, adjusted, risk_ratio, y, t, X, labels, binary) -> dict:
-    main = tests["main"]
-    direction = "greater" if main.statistic >= 0 else "less"
-    statistic = "sum" if spec.statistic == "sum" else "mean_difference"
-    bounds = _sensitivity.gamma_bounds(tests["values"], t, labels, estimand=spec.estimand,
-                                       statistic=statistic, direction=direction,
-                                       gammas=spec.gamma_grid)
-    threshold = _sensitivity.sensitivity_value(tests["values"], t, labels, estimand=spec.estimand,
-                                               statistic=statistic, direction=direction,
-                                               alpha=spec.alpha,
-                                               two_sided=spec.alternative == "two-sided")
-    if binary:
-        rr = risk_ratio
-        if all(v is not None and np.isfinite(v) and v > 0 for v in (rr.estimate, rr.ci_low, rr.ci_high)):
-            e_value = _sensitivity.e_value(rr.estimate, rr.ci_low, rr.ci_high, measure="rr",
-                                           alpha=spec.alpha)
-        else:
-            e_value = None
-            warnings.warn("E-value not computed: the standardized risk ratio or a confidence limit "
-                          "is undefined (a standardized risk of 0 or 1).", ModelWarning)
-    else:
-        sd = _pooled_sd(y, t)
-        e_value = _sensitivity.e_value(adjusted.estimate, adjusted.ci_low, adjusted.ci_high,
-                                       measure="difference", outcome_sd=sd, se=adjusted.se,
-                                       alpha=spec.alpha)
-    benchmarks = _sensitivity.covariate_benchmarks(terms, X, y, t)
-    tipping = _sensitivity.tipping_grid(adjusted.estimate, adjusted.ci_low, adjusted.ci_high,
-                                        measure="difference", benchmarks=benchmarks)
-    return {"e_value": e_value, "bounds": bounds, "threshold": threshold,
-            "level": threshold.alpha,  # alpha, or alpha / 2 per side for a two-sided test
-            "direction": direction, "tipping": tipping}
-
-
-def _pooled_sd(y, t) -> float:
-    """Pooled within-group SD of the outcome (the E-value's standardizer for mean differences)."""
-    y1, y0 = y[t == 1], y[t == 0]
-    pooled = ((len(y1) - 1) * y1.var(ddof=1) + (len(y0) - 1) * y0.var(ddof=1)) / (len(y) - 2)
-    return float(np.sqrt(pooled))
-
-
-def _negative_control(spec, prepared, used, t, X, labels):
-    if prepared.negative_control is None:
-        return None
-    nc = prepared.negative_control[used]
-    ok = np.isfinite(nc)
-    if ok.sum() < 4:
-        raise InputError(f"`--negative-control` column {spec.negative_control!r} has fewer than 4 "
-                         "non-missing values among analysed rows; choose another column")
-    lab = labels[ok]
-    values = _permutation.residualize(nc[ok], X[ok], lab)
-    test = _permutation.stratified_test(values, t[ok], lab, estimand=spec.estimand,
-                                        alternative="two-sided", engine=spec.engine,
-                                        resamples=spec.resamples, seed=spec.seed,
-                                        batch_size=spec.batch_size)
-    est = _effects.stratified_regression(nc[ok], t[ok], X[ok], lab, estimand=spec.estimand,
-                                         measure="difference", alpha=spec.alpha,
-                                         interaction_min_extra=spec.interaction_min_extra,
-                                         population=f"analysed units with {spec.negative_control!r} recorded",
-                                         names=prepared.design_names)
-    return {"column": spec.negative_control, "n": int(ok.sum()), "estimate": est, "test": test,
-            "alarm": bool(test.p_value < spec.alpha)}
-
-
-def _flow(prepared, overlap, strata, used) -> dict:
-    flow = prepared.flow.to_dict()
-    flow["trimmed_by_group"] = dict(overlap.set_aside)
-    flow["strata_set_aside_by_group"] = dict(getattr(strata, "set_aside", {}) or {})
-    t_used = prepared.t[used]
-    flow["analysed_by_group"] = {"exposed": int(t_used.sum()),
-                                 "reference": int(len(t_used) - t_used.sum())}
-    flow["rows_analysed"] = int(len(used))
-    return flow
-
-
-def _prepared_summary(prepared, used) -> dict:
-    return {"outcome_type": prepared.outcome_type,
-            "exposure_levels": dict(prepared.exposure_levels),
-            "outcome_levels": getattr(prepared, "outcome_levels", None),
-            "covariates": list(prepared.covariates),
-            "design_columns": list(prepared.design_names),
-            "n_used": int(len(used))}
+def _prepared_summary(prepared, used) -> PreparedSummary:
+    return PreparedSummary(outcome_type=prepared.outcome_type,
+                           exposure_levels=dict(prepared.exposure_levels),
+                           outcome_levels=getattr(prepared, "outcome_levels", None),
+                           covariates=list(prepared.covariates),
+                           design_columns=list(prepared.design_names), n_used=int(len(used)))
