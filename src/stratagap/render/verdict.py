@@ -8,7 +8,7 @@ follow.
 
 from __future__ import annotations
 
-import math
+from .formatting import format_number as _fmt, format_p_relation as _fmt_p
 
 __all__ = ["write_verdict"]
 
@@ -19,18 +19,6 @@ def _get(obj, name, default=None):
     if isinstance(obj, dict):
         return obj.get(name, default)
     return getattr(obj, name, default)
-
-
-def _fmt(x, digits=2) -> str:
-    if x is None or (isinstance(x, float) and not math.isfinite(x)):
-        return "n/a"
-    return f"{x:.{digits}f}"
-
-
-def _fmt_p(p) -> str:
-    if p is None:
-        return "n/a"
-    return "< 0.0001" if p < 1e-4 else f"= {p:.4f}" if p < 0.01 else f"= {p:.3f}"
 
 
 def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_checks,

@@ -17,21 +17,16 @@ from matplotlib.figure import Figure
 from matplotlib.patches import Polygon
 from scipy import stats
 
+from ..formatting import format_p
 from ._style import ACCENT, ALERT, INK, MUTED, NEUTRAL, PALETTE, REFERENCE, new_figure, plain, view_of
 
 __all__ = ["plot_null_distribution", "plot_stratum_effects", "plot_cross_checks",
-           "plot_p_value_function", "null_value", "format_p"]
+           "plot_p_value_function", "null_value"]
 
 
 def null_value(measure) -> float:
     """The no-effect value on the measure's scale: 1 for ratios, 0 for differences."""
     return 1.0 if "ratio" in str(measure or "").lower() or str(measure) in ("rr", "or") else 0.0
-
-
-def format_p(p) -> str:
-    if p is None or (isinstance(p, float) and not math.isfinite(p)):
-        return "n/a"
-    return "< 0.0001" if p < 1e-4 else f"{p:.4f}"
 
 
 def _empty(ax, text):
