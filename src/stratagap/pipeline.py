@@ -65,6 +65,7 @@ def analyze(table, *, exposure: str, outcome: str, covariates=None, progress=Non
         Frozen; ``to_dict()`` is what ``results.json`` holds.
     """
     started = time.perf_counter()
+    clock = _StageClock()
     if isinstance(table, (str, Path)):
         source = source or {"file": str(table)}
         table = _data.read_table(table)
@@ -73,7 +74,7 @@ def analyze(table, *, exposure: str, outcome: str, covariates=None, progress=Non
     spec = AnalysisSpec(exposure=exposure, outcome=outcome, covariates=covariates, **options)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", StratagapWarning)
-        parts = _run(table, spec, progress)
+        parts = _run(table, spec, progress, clock)
     seen, recorded = set(), []
     for w in caught:
         if not issubclass(w.category, StratagapWarning):
@@ -82,13 +83,14 @@ def analyze(table, *, exposure: str, outcome: str, covariates=None, progress=Non
         if key not in seen:
             seen.add(key)
             recorded.append({"kind": w.category.__name__, "message": str(w.message)})
+    clock.lap("result")
     run = {"seconds": round(time.perf_counter() - started, 3), "versions": versions(),
-           "command": command}
+           "command": command, "stages": clock.to_dict()}
     return AnalysisResult(spec=spec, source=source or {}, warnings=tuple(recorded),
                           cautions=CAUTIONS, run=run, **parts)
 
 
-def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
+def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
     prepared = _data.prepare(
         table, exposure=spec.exposure, outcome=spec.outcome,
         covariates=list(spec.covariates) if spec.covariates else None,
@@ -96,16 +98,20 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
         outcome_event=spec.outcome_event, formula=spec.formula, missing=spec.missing,
         strata_column=spec.strata_column, negative_control=spec.negative_control,
         censoring_weights=spec.censoring_weights)
+    clock.lap("data")
     binary = prepared.outcome_type == "binary"
     if spec.measure != "difference" and not binary:
         raise InputError(f"`--measure {spec.measure}` needs a binary outcome; "
                          f"{spec.outcome!r} is continuous: use --measure difference")
     crude = _effects.crude(prepared.y, prepared.t, prepared.outcome_type, alpha=spec.alpha)
+    clock.lap("effects")
 
     propensity = _scores.fit_propensity(prepared.X, prepared.t, prepared.design_names,
                                         method=spec.score_model, folds=spec.folds, seed=spec.seed)
+    clock.lap("scores")
     overlap = _overlap.apply_overlap(propensity.score, prepared.t, estimand=spec.estimand,
                                      rule=spec.trim)
+    clock.lap("overlap")
     keep = np.asarray(overlap.keep, dtype=bool)
     user = None if prepared.user_strata is None else prepared.user_strata[keep]
     strata = _strata.make_strata(propensity.score[keep], prepared.t[keep], estimand=spec.estimand,
@@ -114,6 +120,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
                                  logit=propensity.logit[keep],
                                  # Imbens & Rubin 2015, ch. 13: a new block needs >= K + 2 units
                                  min_block=len(prepared.design_names) + 2)
+    clock.lap("strata")
     # Rows analysed: kept by the overlap rule and in a stratum holding both groups.
     in_stratum = np.asarray(strata.labels) >= 0
     used = np.flatnonzero(keep)[in_stratum]
@@ -126,8 +133,10 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
     weights = _strata.unit_weights(labels, t, spec.estimand)
     balance = _balance.balance_table(X, t, terms, weights_after=weights,
                                      logit=propensity.logit[used])
+    clock.lap("balance")
 
     tests = _tests(spec, y, t, X, labels, binary, progress)
+    clock.lap("tests")
     headline_measure = "difference" if spec.measure == "difference" else spec.measure
     adjusted = _effects.stratified_regression(
         y, t, X, labels, estimand=spec.estimand, measure=headline_measure, alpha=spec.alpha,
@@ -150,6 +159,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
             y, t, X, labels, estimand=spec.estimand, measure="rr", alpha=spec.alpha,
             interaction_min_extra=spec.interaction_min_extra, population=population,
             names=prepared.design_names)
+    clock.lap("effects")
 
     cross = _crosscheck.cross_checks(y, t, X, estimand=spec.estimand, alpha=spec.alpha,
                                      outcome_type=prepared.outcome_type,
@@ -161,19 +171,23 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
         warnings.warn("Censoring weights enter the cross-check row 'IPW x censoring weights'; the "
                       "stratified headline and the permutation test use the complete cases "
                       "unweighted.", MissingDataWarning)
+    clock.lap("cross_checks")
     heterogeneity = _heterogeneity.heterogeneity_across_strata(adjusted.per_stratum, y, t, labels,
                                                                binary=binary)
+    clock.lap("heterogeneity")
 
     sensitivity = _sensitivity.sensitivity_analysis(
         tests["values"], t, labels, X, y, terms, observed=tests["main"].statistic,
         statistic="sum" if spec.statistic == "sum" else "mean_difference",
         estimand=spec.estimand, alternative=spec.alternative, alpha=spec.alpha,
         gammas=spec.gamma_grid, adjusted=adjusted, risk_ratio=risk_ratio, binary=binary)
+    clock.lap("sensitivity")
     negative = None if prepared.negative_control is None else _sensitivity.negative_control_check(
         prepared.negative_control[used], t, X, labels, column=spec.negative_control,
         names=prepared.design_names, estimand=spec.estimand, alpha=spec.alpha,
         engine=spec.engine, resamples=spec.resamples, seed=spec.seed,
         batch_size=spec.batch_size, interaction_min_extra=spec.interaction_min_extra)
+    clock.lap("negative_control")
     flow = ParticipantFlow.from_stages(prepared.flow, trimmed_by_group=overlap.set_aside,
                                        strata_set_aside_by_group=getattr(strata, "set_aside", {}),
                                        t_analysed=t)
@@ -196,6 +210,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
     parts["verdict"] = write_verdict(spec=spec, **{k: parts[k] for k in (
         "crude", "adjusted", "tests", "balance", "sensitivity", "cross_checks",
         "negative_control", "overlap")})
+    clock.lap("verdict")
     return parts
 
 
@@ -247,3 +262,24 @@ def _prepared_summary(prepared, used) -> PreparedSummary:
                            outcome_levels=getattr(prepared, "outcome_levels", None),
                            covariates=list(prepared.covariates),
                            design_columns=list(prepared.design_names), n_used=int(len(used)))
+
+
+class _StageClock:
+    """Wall (``time.perf_counter``) and CPU (``time.process_time``, all threads of the process)
+    seconds per stage, for ``run.json``: ``lap(name)`` charges the time since the previous lap
+    to ``name`` (a name may recur: "effects" is charged before and after the tests)."""
+
+    def __init__(self):
+        self._stages = {}
+        self._wall, self._cpu = time.perf_counter(), time.process_time()
+
+    def lap(self, stage: str) -> None:
+        wall, cpu = time.perf_counter(), time.process_time()
+        spent = self._stages.setdefault(stage, {"wall": 0.0, "cpu": 0.0})
+        spent["wall"] += wall - self._wall
+        spent["cpu"] += cpu - self._cpu
+        self._wall, self._cpu = wall, cpu
+
+    def to_dict(self) -> dict:
+        return {name: {k: round(v, 4) for k, v in spent.items()}
+                for name, spent in self._stages.items()}
