@@ -47,7 +47,7 @@ def plot_null_distribution(result, *, bins: int = 50) -> Figure:
     matplotlib.figure.Figure
     """
     v = view_of(result)
-    test = v.data.get("test", {}) or {}
+    test = v.data["test"]
     obs = test.get("statistic")
     alt = test.get("alternative", "two-sided")
     engine = test.get("engine", "")
@@ -122,8 +122,8 @@ def plot_stratum_effects(result) -> Figure:
     matplotlib.figure.Figure
     """
     v = view_of(result)
-    adj = v.data.get("adjusted", {}) or {}
-    per = list(adj.get("per_stratum") or [])
+    adj = v.data["adjusted"]
+    per = list(adj["per_stratum"])
     level = int(round(100 * (1 - float(adj.get("alpha") or 0.05))))
     measure = adj.get("measure", "")
     ratio = "ratio" in str(measure)
@@ -174,7 +174,7 @@ def _rows_for_cross_checks(data: dict) -> list[tuple[str, dict, str]]:
     crude = data.get("crude")
     if crude:
         rows.append(("crude (unadjusted)", crude, NEUTRAL))
-    adj = data.get("adjusted") or {}
+    adj = data["adjusted"]
     if adj.get("estimate") is not None:
         rows.append(("strata + regression (headline)", adj, ACCENT))
     if adj.get("plain_stratified"):
@@ -199,7 +199,7 @@ def plot_cross_checks(result) -> Figure:
     matplotlib.figure.Figure
     """
     v = view_of(result)
-    adj = v.data.get("adjusted", {}) or {}
+    adj = v.data["adjusted"]
     measure = adj.get("measure", "")
     rows = _rows_for_cross_checks(v.data)
     level = int(round(100 * (1 - float(adj.get("alpha") or 0.05))))
@@ -260,8 +260,8 @@ def plot_p_value_function(result) -> Figure:
     matplotlib.figure.Figure
     """
     v = view_of(result)
-    adj = v.data.get("adjusted", {}) or {}
-    ce = adj.get("constant_effect") or {}
+    adj = v.data["adjusted"]
+    ce = adj.get("constant_effect") or {}  # None for binary outcomes
     alpha = float(adj.get("alpha") or v.data.get("spec", {}).get("alpha") or 0.05)
     tau, p = ce.get("curve_tau") or ce.get("tau_grid"), ce.get("curve_p") or ce.get("p_grid")
     measure = adj.get("measure", "")
