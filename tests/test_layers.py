@@ -216,3 +216,17 @@ def test_old_paths_warn_and_give_the_moved_module():
     sys.modules.pop("stratagap.report.html", None)
     with pytest.warns(DeprecationWarning):
         from stratagap.report.html import render_html  # noqa: F401  (a submodule of an old path)
+
+
+def test_old_path_leaves_the_new_package_intact():
+    """Importing an old path must not turn the moved package into a plain module."""
+    import importlib
+    import sys
+
+    sys.modules.pop("stratagap.report", None)
+    with pytest.warns(DeprecationWarning):
+        importlib.import_module("stratagap.report")
+    real = importlib.import_module("stratagap.render.report")
+    assert real.__spec__.name == "stratagap.render.report"
+    assert real.__spec__.submodule_search_locations is not None
+    importlib.import_module("stratagap.render.report.baseline")  # still a package

@@ -134,3 +134,20 @@ def test_matched_pairs_binary_sum_bound_at_gamma_one_is_the_exact_test():
     assert bounds["method"] == "exact"
     side = "p_greater" if d["sensitivity"]["gamma_direction"] == "greater" else "p_less"
     assert bounds["curve"][0]["p_upper"] == pytest.approx(d["test"][side], rel=1e-10)
+
+
+# The pipeline's stages in the order they run (run.json "stages"; docs/results.md).
+STAGES = ["data", "effects", "scores", "overlap", "strata", "balance", "tests", "cross_checks",
+          "heterogeneity", "sensitivity", "negative_control", "verdict", "result"]
+
+
+def test_run_records_wall_and_cpu_time_per_stage(small_result):
+    stages = small_result.run["stages"]
+    assert list(stages) == STAGES  # every stage is listed (negative_control near 0 without one)
+    for name, spent in stages.items():
+        assert set(spent) == {"wall", "cpu"} and spent["wall"] >= 0 and spent["cpu"] >= 0, name
+    # the laps partition the run: their wall times add up to (at most) the whole run's
+    assert sum(s["wall"] for s in stages.values()) <= small_result.run["seconds"] + 0.01
+    assert stages["tests"]["wall"] > 0  # 999 resamples take measurable time
+    data = small_result.to_dict()
+    assert "stages" not in data and "seconds" not in data  # timings stay out of results.json

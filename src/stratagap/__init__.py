@@ -41,6 +41,9 @@ MOVED = {
 class _MovedModuleFinder(importlib.abc.MetaPathFinder, importlib.abc.Loader):
     """Serve ``stratagap.<old>`` (and its submodules) as the module at its new path."""
 
+    def __init__(self):
+        self._real_specs = {}
+
     def find_spec(self, fullname, path=None, target=None):
         new = _new_name(fullname)
         if new is None:
@@ -51,10 +54,14 @@ class _MovedModuleFinder(importlib.abc.MetaPathFinder, importlib.abc.Loader):
         new = _new_name(spec.name)
         warnings.warn(f"`{spec.name}` moved to `{new}` and the old path will be removed in the "
                       "next release; import the new path", DeprecationWarning, stacklevel=2)
-        return importlib.import_module(new)
+        module = importlib.import_module(new)
+        self._real_specs[spec.name] = module.__spec__
+        return module
 
     def exec_module(self, module):
-        pass  # the module was executed under its new name
+        # The module was executed under its new name; the import system has just stamped the
+        # alias's spec on it, which would make a package look like a plain module: restore it.
+        module.__spec__ = self._real_specs.pop(module.__spec__.name)
 
 
 def _new_name(fullname):

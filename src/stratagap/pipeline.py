@@ -26,9 +26,9 @@ from .stratify import scores as _scores
 from . import sensitivity as _sensitivity
 from .stratify import strata as _strata
 from ._base.layout import StratumLayout
-from .errors import (InputError, MissingDataWarning, ModelWarning, StrataWarning,
-                      StratagapWarning)
-from .result import AnalysisResult, CAUTIONS, versions
+from .errors import InputError, MissingDataWarning, StrataWarning, StratagapWarning
+from .result import (AnalysisResult, CAUTIONS, TEST_LABELS, ParticipantFlow, PermutationTests,
+                     PreparedSummary, versions)
 from .spec import AnalysisSpec
 from .render.verdict import write_verdict
 
@@ -66,6 +66,7 @@ def analyze(table, *, exposure: str, outcome: str, covariates=None, progress=Non
         Frozen; ``to_dict()`` is what ``results.json`` holds.
     """
     started = time.perf_counter()
+    clock = _StageClock()
     if isinstance(table, (str, Path)):
         source = source or {"file": str(table)}
         table = _data.read_table(table)
@@ -74,7 +75,7 @@ def analyze(table, *, exposure: str, outcome: str, covariates=None, progress=Non
     spec = AnalysisSpec(exposure=exposure, outcome=outcome, covariates=covariates, **options)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", StratagapWarning)
-        parts = _run(table, spec, progress)
+        parts = _run(table, spec, progress, clock)
     seen, recorded = set(), []
     for w in caught:
         if not issubclass(w.category, StratagapWarning):
@@ -83,13 +84,14 @@ def analyze(table, *, exposure: str, outcome: str, covariates=None, progress=Non
         if key not in seen:
             seen.add(key)
             recorded.append({"kind": w.category.__name__, "message": str(w.message)})
+    clock.lap("result")
     run = {"seconds": round(time.perf_counter() - started, 3), "versions": versions(),
-           "command": command}
+           "command": command, "stages": clock.to_dict()}
     return AnalysisResult(spec=spec, source=source or {}, warnings=tuple(recorded),
                           cautions=CAUTIONS, run=run, **parts)
 
 
-def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
+def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
     prepared = _data.prepare(
         table, exposure=spec.exposure, outcome=spec.outcome,
         covariates=list(spec.covariates) if spec.covariates else None,
@@ -97,16 +99,20 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
         outcome_event=spec.outcome_event, formula=spec.formula, missing=spec.missing,
         strata_column=spec.strata_column, negative_control=spec.negative_control,
         censoring_weights=spec.censoring_weights)
+    clock.lap("data")
     binary = prepared.outcome_type == "binary"
     if spec.measure != "difference" and not binary:
         raise InputError(f"`--measure {spec.measure}` needs a binary outcome; "
                          f"{spec.outcome!r} is continuous: use --measure difference")
     crude = _effects.crude(prepared.y, prepared.t, prepared.outcome_type, alpha=spec.alpha)
+    clock.lap("effects")
 
     propensity = _scores.fit_propensity(prepared.X, prepared.t, prepared.design_names,
                                         method=spec.score_model, folds=spec.folds, seed=spec.seed)
+    clock.lap("scores")
     overlap = _overlap.apply_overlap(propensity.score, prepared.t, estimand=spec.estimand,
                                      rule=spec.trim)
+    clock.lap("overlap")
     keep = np.asarray(overlap.keep, dtype=bool)
     user = None if prepared.user_strata is None else prepared.user_strata[keep]
     strata = _strata.make_strata(propensity.score[keep], prepared.t[keep], estimand=spec.estimand,
@@ -115,6 +121,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
                                  logit=propensity.logit[keep],
                                  # Imbens & Rubin 2015, ch. 13: a new block needs >= K + 2 units
                                  min_block=len(prepared.design_names) + 2)
+    clock.lap("strata")
     # Rows analysed: kept by the overlap rule and in a stratum holding both groups.
     in_stratum = np.asarray(strata.labels) >= 0
     used = np.flatnonzero(keep)[in_stratum]
@@ -127,9 +134,11 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
     weights = _strata.unit_weights(labels, t, spec.estimand)
     balance = _balance.balance_table(X, t, terms, weights_after=weights,
                                      logit=propensity.logit[used])
+    clock.lap("balance")
 
     layout = StratumLayout.build(labels, t, spec.estimand)  # one layout of the analysed rows
     tests, draws = _tests(spec, y, t, X, labels, layout, binary, progress)
+    clock.lap("tests")
     headline_measure = "difference" if spec.measure == "difference" else spec.measure
     adjusted = _effects.stratified_regression(
         y, t, X, labels, estimand=spec.estimand, measure=headline_measure, alpha=spec.alpha,
@@ -152,6 +161,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
             y, t, X, labels, estimand=spec.estimand, measure="rr", alpha=spec.alpha,
             interaction_min_extra=spec.interaction_min_extra, population=population,
             names=prepared.design_names)
+    clock.lap("effects")
 
     cross = _crosscheck.cross_checks(y, t, X, estimand=spec.estimand, alpha=spec.alpha,
                                      outcome_type=prepared.outcome_type,
@@ -163,15 +173,33 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
         warnings.warn("Censoring weights enter the cross-check row 'IPW x censoring weights'; the "
                       "stratified headline and the permutation test use the complete cases "
                       "unweighted.", MissingDataWarning)
-    heterogeneity = _heterogeneity_block(adjusted.per_stratum, y, t, labels, binary)
+    clock.lap("cross_checks")
+    heterogeneity = _heterogeneity.heterogeneity_across_strata(adjusted.per_stratum, y, t, labels,
+                                                               binary=binary)
+    clock.lap("heterogeneity")
 
-    sensitivity = _sensitivity_block(spec, terms, tests, adjusted, risk_ratio, y, t, X, labels,
-                                     binary)
-    negative = _negative_control(spec, prepared, used, t, X, labels)
-    flow = _flow(prepared, overlap, strata, used)
+    sensitivity = _sensitivity.sensitivity_analysis(
+        tests["values"], t, labels, X, y, terms, observed=tests["main"].statistic,
+        statistic="sum" if spec.statistic == "sum" else "mean_difference",
+        estimand=spec.estimand, alternative=spec.alternative, alpha=spec.alpha,
+        gammas=spec.gamma_grid, adjusted=adjusted, risk_ratio=risk_ratio, binary=binary)
+    clock.lap("sensitivity")
+    negative = None if prepared.negative_control is None else _sensitivity.negative_control_check(
+        prepared.negative_control[used], t, X, labels, column=spec.negative_control,
+        names=prepared.design_names, estimand=spec.estimand, alpha=spec.alpha,
+        engine=spec.engine, resamples=spec.resamples, seed=spec.seed,
+        batch_size=spec.batch_size, interaction_min_extra=spec.interaction_min_extra)
+    clock.lap("negative_control")
+    flow = ParticipantFlow.from_stages(prepared.flow, trimmed_by_group=overlap.set_aside,
+                                       strata_set_aside_by_group=getattr(strata, "set_aside", {}),
+                                       t_analysed=t)
+    test_set = PermutationTests(main=tests["main"], statistic_kind=spec.statistic,
+                                statistic_label=TEST_LABELS[spec.statistic],
+                                studentized=tests.get("studentized"),
+                                sum_statistic=tests.get("sum"))
     parts = dict(
         prepared_summary=_prepared_summary(prepared, used), flow=flow, propensity=propensity,
-        overlap=overlap, strata=strata, balance=balance, tests=tests, crude=crude,
+        overlap=overlap, strata=strata, balance=balance, tests=test_set, crude=crude,
         adjusted=adjusted, plain=plain, constant_effect=constant, mantel_haenszel=mh,
         risk_ratio=risk_ratio, cross_checks=cross, heterogeneity=heterogeneity,
         sensitivity=sensitivity, negative_control=negative,
@@ -184,6 +212,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress) -> dict:
     parts["verdict"] = write_verdict(spec=spec, **{k: parts[k] for k in (
         "crude", "adjusted", "tests", "balance", "sensitivity", "cross_checks",
         "negative_control", "overlap")})
+    clock.lap("verdict")
     return parts
 
 
@@ -227,97 +256,30 @@ def _tests(spec, y, t, X, labels, layout, binary, progress):
     return out, draws
 
 
-def _heterogeneity_block(per_stratum, y, t, labels, binary) -> dict:
-    """Cochran's Q (and Breslow-Day for binary outcomes); undefined with a single stratum."""
-    usable = [s for s in per_stratum if s["se"] is not None and np.isfinite(s["se"]) and s["se"] > 0]
-    if len(usable) < 2:
-        return {"cochran_q": None, "note": "fewer than 2 strata with a standard error: "
-                                           "heterogeneity across strata is not defined"}
-    out = {"cochran_q": _heterogeneity.cochran_q([s["estimate"] for s in usable],
-                                                 [s["se"] for s in usable]).to_dict()}
-    if binary:
-        out["breslow_day"] = _heterogeneity.breslow_day(y, t, labels).to_dict()
-    return out
+def _prepared_summary(prepared, used) -> PreparedSummary:
+    return PreparedSummary(outcome_type=prepared.outcome_type,
+                           exposure_levels=dict(prepared.exposure_levels),
+                           outcome_levels=getattr(prepared, "outcome_levels", None),
+                           covariates=list(prepared.covariates),
+                           design_columns=list(prepared.design_names), n_used=int(len(used)))
 
 
-def _sensitivity_block(spec, terms, tests, adjusted, risk_ratio, y, t, X, labels, binary) -> dict:
-    main = tests["main"]
-    direction = "greater" if main.statistic >= 0 else "less"
-    statistic = "sum" if spec.statistic == "sum" else "mean_difference"
-    bounds = _sensitivity.gamma_bounds(tests["values"], t, labels, estimand=spec.estimand,
-                                       statistic=statistic, direction=direction,
-                                       gammas=spec.gamma_grid)
-    threshold = _sensitivity.sensitivity_value(tests["values"], t, labels, estimand=spec.estimand,
-                                               statistic=statistic, direction=direction,
-                                               alpha=spec.alpha,
-                                               two_sided=spec.alternative == "two-sided")
-    if binary:
-        rr = risk_ratio
-        if all(v is not None and np.isfinite(v) and v > 0 for v in (rr.estimate, rr.ci_low, rr.ci_high)):
-            e_value = _sensitivity.e_value(rr.estimate, rr.ci_low, rr.ci_high, measure="rr",
-                                           alpha=spec.alpha)
-        else:
-            e_value = None
-            warnings.warn("E-value not computed: the standardized risk ratio or a confidence limit "
-                          "is undefined (a standardized risk of 0 or 1).", ModelWarning)
-    else:
-        sd = _pooled_sd(y, t)
-        e_value = _sensitivity.e_value(adjusted.estimate, adjusted.ci_low, adjusted.ci_high,
-                                       measure="difference", outcome_sd=sd, se=adjusted.se,
-                                       alpha=spec.alpha)
-    benchmarks = _sensitivity.covariate_benchmarks(terms, X, y, t)
-    tipping = _sensitivity.tipping_grid(adjusted.estimate, adjusted.ci_low, adjusted.ci_high,
-                                        measure="difference", benchmarks=benchmarks)
-    return {"e_value": e_value, "bounds": bounds, "threshold": threshold,
-            "level": threshold.alpha,  # alpha, or alpha / 2 per side for a two-sided test
-            "direction": direction, "tipping": tipping}
+class _StageClock:
+    """Wall (``time.perf_counter``) and CPU (``time.process_time``, all threads of the process)
+    seconds per stage, for ``run.json``: ``lap(name)`` charges the time since the previous lap
+    to ``name`` (a name may recur: "effects" is charged before and after the tests)."""
 
+    def __init__(self):
+        self._stages = {}
+        self._wall, self._cpu = time.perf_counter(), time.process_time()
 
-def _pooled_sd(y, t) -> float:
-    """Pooled within-group SD of the outcome (the E-value's standardizer for mean differences)."""
-    y1, y0 = y[t == 1], y[t == 0]
-    pooled = ((len(y1) - 1) * y1.var(ddof=1) + (len(y0) - 1) * y0.var(ddof=1)) / (len(y) - 2)
-    return float(np.sqrt(pooled))
+    def lap(self, stage: str) -> None:
+        wall, cpu = time.perf_counter(), time.process_time()
+        spent = self._stages.setdefault(stage, {"wall": 0.0, "cpu": 0.0})
+        spent["wall"] += wall - self._wall
+        spent["cpu"] += cpu - self._cpu
+        self._wall, self._cpu = wall, cpu
 
-
-def _negative_control(spec, prepared, used, t, X, labels):
-    if prepared.negative_control is None:
-        return None
-    nc = prepared.negative_control[used]
-    ok = np.isfinite(nc)
-    if ok.sum() < 4:
-        raise InputError(f"`--negative-control` column {spec.negative_control!r} has fewer than 4 "
-                         "non-missing values among analysed rows; choose another column")
-    lab = labels[ok]
-    values = _permutation.residualize(nc[ok], X[ok], lab)
-    test = _permutation.stratified_test(values, t[ok], lab, estimand=spec.estimand,
-                                        alternative="two-sided", engine=spec.engine,
-                                        resamples=spec.resamples, seed=spec.seed,
-                                        batch_size=spec.batch_size)
-    est = _effects.stratified_regression(nc[ok], t[ok], X[ok], lab, estimand=spec.estimand,
-                                         measure="difference", alpha=spec.alpha,
-                                         interaction_min_extra=spec.interaction_min_extra,
-                                         population=f"analysed units with {spec.negative_control!r} recorded",
-                                         names=prepared.design_names)
-    return {"column": spec.negative_control, "n": int(ok.sum()), "estimate": est, "test": test,
-            "alarm": bool(test.p_value < spec.alpha)}
-
-
-def _flow(prepared, overlap, strata, used) -> dict:
-    flow = prepared.flow.to_dict()
-    flow["trimmed_by_group"] = dict(overlap.set_aside)
-    flow["strata_set_aside_by_group"] = dict(getattr(strata, "set_aside", {}) or {})
-    t_used = prepared.t[used]
-    flow["analysed_by_group"] = {"exposed": int(t_used.sum()),
-                                 "reference": int(len(t_used) - t_used.sum())}
-    flow["rows_analysed"] = int(len(used))
-    return flow
-
-
-def _prepared_summary(prepared, used) -> dict:
-    return {"outcome_type": prepared.outcome_type,
-            "exposure_levels": dict(prepared.exposure_levels),
-            "outcome_levels": getattr(prepared, "outcome_levels", None),
-            "covariates": list(prepared.covariates),
-            "design_columns": list(prepared.design_names),
-            "n_used": int(len(used))}
+    def to_dict(self) -> dict:
+        return {name: {k: round(v, 4) for k, v in spent.items()}
+                for name, spent in self._stages.items()}

@@ -3,6 +3,14 @@
 :class:`AnalysisResult` holds every stage's result. ``to_dict()`` is exactly what
 ``results.json`` holds (field by field in ``docs/results.md``); the CLI summary, the HTML report
 and the notebook view only render it and never recompute.
+
+Each block is a frozen dataclass whose field names are the ``results.json`` names, so
+``to_dict()`` only assembles. The blocks a stage builds live with that stage
+(:class:`~stratagap.estimation.heterogeneity.Heterogeneity`,
+:class:`~stratagap.sensitivity.analysis.Sensitivity`,
+:class:`~stratagap.sensitivity.negative_control.NegativeControl`); the blocks the pipeline puts
+together from several stages live here (:class:`PermutationTests`, :class:`ParticipantFlow`,
+:class:`PreparedSummary`).
 """
 
 from __future__ import annotations
@@ -12,10 +20,15 @@ from dataclasses import dataclass, field
 from importlib import metadata
 from typing import Any
 
-from ._base.jsonable import jsonable
+from ._base.jsonable import fields_dict, jsonable
+from .estimation.heterogeneity import Heterogeneity
+from .inference.permutation import PermutationResult
+from .sensitivity.analysis import Sensitivity
+from .sensitivity.negative_control import NegativeControl
 from .spec import AnalysisSpec
 
-__all__ = ["AnalysisResult", "CAUTIONS", "to_json", "jsonable"]
+__all__ = ["AnalysisResult", "PermutationTests", "ParticipantFlow", "PreparedSummary", "CAUTIONS",
+           "to_json", "jsonable"]
 
 SCHEMA = "stratagap.results/1"
 
@@ -48,10 +61,78 @@ def versions() -> dict:
     return out
 
 
-
 def to_json(data: dict) -> str:
     """Deterministic JSON text (same inputs and seed give the same bytes)."""
     return json.dumps(jsonable(data), indent=2, ensure_ascii=False, allow_nan=False) + "\n"
+
+
+@dataclass(frozen=True)
+class PermutationTests:
+    """The ``test`` block: the headline test's own fields, then the fields below.
+
+    ``studentized`` (the weak-null companion of the adjusted statistic) and ``sum_statistic``
+    (binary outcomes: the sum-of-exposed-events / CMH test) are absent when not run.
+    """
+
+    main: PermutationResult  # its fields open the block
+    statistic_kind: str  # the `statistic` setting
+    statistic_label: str  # TEST_LABELS[statistic_kind]
+    studentized: PermutationResult | None = None
+    sum_statistic: PermutationResult | None = None
+
+    def to_dict(self) -> dict:
+        rest = fields_dict(self, optional=("studentized", "sum_statistic"))
+        del rest["main"]
+        return {**jsonable(self.main), **rest}
+
+
+@dataclass(frozen=True)
+class ParticipantFlow:
+    """The ``flow`` block: row counts from the file to the analysed rows.
+
+    The first nine fields are the data stage's counts
+    (:class:`stratagap.data.Flow`, already JSON-ready); the last four come from the overlap
+    rule, the strata and the analysed rows. Built once, by :meth:`from_stages`.
+    """
+
+    rows_read: int
+    dropped_missing_by_column: dict
+    dropped_missing_by_group: dict
+    missing_outcome_by_group: dict
+    missing_outcome_p_value: float | None
+    negative_control_missing: int
+    rows_used: int
+    used_by_group: dict
+    missing_policy: str
+    trimmed_by_group: dict  # set aside by the overlap rule, by group
+    strata_set_aside_by_group: dict  # in a stratum lacking a group, by group
+    analysed_by_group: dict
+    rows_analysed: int
+
+    @classmethod
+    def from_stages(cls, counts, *, trimmed_by_group, strata_set_aside_by_group,
+                    t_analysed) -> "ParticipantFlow":
+        """``counts``: the data stage's Flow; ``t_analysed``: exposure of the analysed rows."""
+        n1 = int(t_analysed.sum())
+        return cls(**counts.to_dict(), trimmed_by_group=jsonable(dict(trimmed_by_group)),
+                   strata_set_aside_by_group=jsonable(dict(strata_set_aside_by_group or {})),
+                   analysed_by_group={"exposed": n1, "reference": int(len(t_analysed) - n1)},
+                   rows_analysed=int(len(t_analysed)))
+
+    def to_dict(self) -> dict:
+        return fields_dict(self)
+
+
+@dataclass(frozen=True)
+class PreparedSummary:
+    """What the data stage found, as the result reports it (``question`` and ``covariates``)."""
+
+    outcome_type: str
+    exposure_levels: dict  # "exposed", "reference" -> the group values
+    outcome_levels: Any
+    covariates: list
+    design_columns: list
+    n_used: int
 
 
 @dataclass(frozen=True)
@@ -60,13 +141,13 @@ class AnalysisResult:
 
     spec: AnalysisSpec
     source: dict
-    prepared_summary: dict
-    flow: dict
+    prepared_summary: PreparedSummary
+    flow: ParticipantFlow
     propensity: Any
     overlap: Any
     strata: Any
     balance: Any
-    tests: dict
+    tests: PermutationTests
     crude: Any
     adjusted: Any
     plain: Any
@@ -74,9 +155,9 @@ class AnalysisResult:
     mantel_haenszel: Any
     risk_ratio: Any
     cross_checks: Any
-    heterogeneity: dict
-    sensitivity: dict
-    negative_control: Any
+    heterogeneity: Heterogeneity
+    sensitivity: Sensitivity
+    negative_control: NegativeControl | None
     verdict: str
     warnings: tuple
     cautions: tuple
@@ -86,12 +167,12 @@ class AnalysisResult:
     # -- convenience -----------------------------------------------------------------
     @property
     def n_used(self) -> int:
-        return int(self.prepared_summary["n_used"])
+        return self.prepared_summary.n_used
 
     @property
     def test(self):
         """The default (headline) permutation test."""
-        return self.tests["main"]
+        return self.tests.main
 
     @property
     def tables(self):
@@ -104,16 +185,7 @@ class AnalysisResult:
 
     # -- JSON --------------------------------------------------------------------------
     def to_dict(self) -> dict:
-        spec = self.spec
-        main = self.tests["main"]
-        test = jsonable(main)
-        test["statistic_kind"] = spec.statistic
-        test["statistic_label"] = TEST_LABELS[spec.statistic]
-        if "studentized" in self.tests:
-            test["studentized"] = jsonable(self.tests["studentized"])
-        if "sum" in self.tests:
-            test["sum_statistic"] = jsonable(self.tests["sum"])
-
+        spec, prepared = self.spec, self.prepared_summary
         adjusted = jsonable(self.adjusted)
         adjusted["plain_stratified"] = jsonable(self.plain)
         adjusted["constant_effect"] = jsonable(self.constant_effect)
@@ -121,28 +193,15 @@ class AnalysisResult:
         if self.risk_ratio is not None and self.risk_ratio is not self.adjusted:
             adjusted["standardized_risk_ratio"] = jsonable(self.risk_ratio)
 
-        sens = self.sensitivity
-        bounds = jsonable(sens["bounds"])
-        threshold = jsonable(sens["threshold"])
-        sensitivity = {
-            "e_value": jsonable(sens["e_value"]),
-            "gamma_threshold": threshold["gamma"],
-            "gamma_threshold_detail": threshold,
-            "gamma_level": sens["level"],
-            "gamma_direction": sens["direction"],
-            "gamma_curve": bounds["curve"],
-            "gamma_bounds": bounds,
-            "tipping": jsonable(sens["tipping"]),
-        }
         cross = jsonable(self.cross_checks)
         strata = jsonable(self.strata)
         out = {
             "schema": SCHEMA,
             "question": {
                 "exposure": spec.exposure, "outcome": spec.outcome,
-                "exposed_value": self.prepared_summary["exposure_levels"].get("exposed"),
-                "reference_value": self.prepared_summary["exposure_levels"].get("reference"),
-                "outcome_type": self.prepared_summary["outcome_type"],
+                "exposed_value": prepared.exposure_levels.get("exposed"),
+                "reference_value": prepared.exposure_levels.get("reference"),
+                "outcome_type": prepared.outcome_type,
                 "estimand": spec.estimand.upper(),
                 "population": self.overlap.estimand_label,
             },
@@ -150,20 +209,21 @@ class AnalysisResult:
             "spec": {k: v for k, v in spec.to_dict().items() if k != "data_path"},
             "n_used": self.n_used,
             "flow": self.flow,
-            "covariates": {k: self.prepared_summary[k] for k in ("covariates", "design_columns")},
+            "covariates": {"covariates": prepared.covariates,
+                           "design_columns": prepared.design_columns},
             "propensity": jsonable(self.propensity),
             "overlap": jsonable(self.overlap),
             "strata": strata.get("table", []),
             "strata_info": {k: v for k, v in strata.items() if k != "table"},
             "balance": jsonable(self.balance),
-            "test": test,
+            "test": self.tests,
             "crude": jsonable(self.crude),
             "adjusted": adjusted,
-            "heterogeneity": jsonable(self.heterogeneity),
+            "heterogeneity": self.heterogeneity,
             "cross_checks": cross["rows"],
             "cross_check_weights": cross["weights"],
-            "sensitivity": sensitivity,
-            "negative_control": jsonable(self.negative_control),
+            "sensitivity": self.sensitivity,
+            "negative_control": self.negative_control,
             "verdict": self.verdict,
             "warnings": [dict(w) for w in self.warnings],
             "cautions": list(self.cautions),

@@ -73,3 +73,30 @@ def test_empty_result_gives_empty_frames():
     t = ResultTables(_FakeResult(view))
     assert t.balance.empty and list(t.balance.columns) == BALANCE_COLUMNS
     assert t.strata.empty and t.cross_checks.empty
+
+
+def test_one_strata_join_behind_the_csv_the_table_and_the_report():
+    from stratagap.render.files import strata_csv
+    from stratagap.render.report._context import _strata_rows
+    from stratagap.render.tables import strata_with_estimates
+    data = handmade().data
+    data["adjusted"] = dict(data["adjusted"], per_stratum=data["adjusted"]["per_stratum"][:1])
+    rows = strata_with_estimates(data)
+    # stratum 0 gains its estimate; stratum 1 (no estimate row) keeps only its own fields
+    assert rows[0]["estimate"] == 1.5 and rows[0]["model"] == "interactions"
+    assert rows[0]["weight"] == data["strata"][0]["weight"]  # the stratum's own field wins
+    assert rows[1] == data["strata"][1]
+    csv_lines = strata_csv(data).splitlines()
+    assert csv_lines[0] == ",".join(STRATA_COLUMNS) and csv_lines[2].endswith(",,,,,")
+    report = _strata_rows(data)
+    assert report[0]["ci"] == "-0.46 to 3.46" and report[1]["ci"] == "n/a"
+    assert report[1]["estimate"] == "n/a" and report[1]["model"] == ""
+
+
+def test_balance_column_variants_have_one_home():
+    from stratagap.render import files
+    from stratagap.stratify.balance import CSV_COLUMNS, TABLE_COLUMNS
+    assert files.BALANCE_COLUMNS is CSV_COLUMNS and BALANCE_COLUMNS is TABLE_COLUMNS
+    # the notebook table adds the term's kind after its level; balance.csv keeps its columns
+    assert [c for c in TABLE_COLUMNS if c != "kind"] == CSV_COLUMNS
+    assert TABLE_COLUMNS.index("kind") == CSV_COLUMNS.index("level") + 1

@@ -39,9 +39,10 @@ _DURATIONS = {"time", "days", "months", "years", "followup", "duration", "surviv
 
 @dataclass(frozen=True)
 class Flow:
-    """Row counts from the file to the analysed rows.
+    """Row counts of the data stage: from the file to the complete cases.
 
-    ``dropped_missing_by_column`` counts, per analysed column, the rows it was missing in (a row
+    The later stages' counts (trimmed, set aside, analysed) join these in the result's
+    participant flow (:class:`stratagap.result.ParticipantFlow`). ``dropped_missing_by_column`` counts, per analysed column, the rows it was missing in (a row
     missing two columns counts in both); ``dropped_missing_by_group`` counts each dropped row once
     by its exposure group ("unknown" when the exposure itself is missing).
     """
@@ -55,9 +56,6 @@ class Flow:
     missing_policy: str = "drop"
     missing_outcome_p_value: float | None = None
     negative_control_missing: int = 0
-    trimmed_by_group: dict | None = None
-    strata_set_aside_by_group: dict | None = None
-    analysed_by_group: dict | None = None
 
     def to_dict(self) -> dict:
         p = self.missing_outcome_p_value
@@ -73,9 +71,6 @@ class Flow:
             "rows_used": int(self.rows_used),
             "used_by_group": {str(k): int(v) for k, v in self.used_by_group.items()},
             "missing_policy": self.missing_policy,
-            "trimmed_by_group": _intdict(self.trimmed_by_group),
-            "strata_set_aside_by_group": _intdict(self.strata_set_aside_by_group),
-            "analysed_by_group": _intdict(self.analysed_by_group),
         }
 
 
@@ -408,7 +403,3 @@ _fmt = _design.fmt
 
 def _jsonf(x):
     return None if x is None or not np.isfinite(x) else float(x)
-
-
-def _intdict(d):
-    return None if d is None else {str(k): int(v) for k, v in d.items()}

@@ -4,6 +4,8 @@
   differences), with I^2 (Higgins & Thompson 2002).
 * :func:`breslow_day`: Breslow-Day test of a common odds ratio with Tarone's correction, for
   binary outcomes (statsmodels ``StratifiedTable.test_equal_odds(adjust=True)``).
+* :func:`heterogeneity_across_strata`: the analysis's ``heterogeneity`` block (both tests on the
+  headline's per-stratum estimates, or a note when they are undefined).
 
 Both have little power with five strata; a large p-value is not evidence of a constant effect.
 
@@ -26,9 +28,11 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 from scipy import stats
 
+from .._base.jsonable import fields_dict
 from ..errors import InputError, ModelWarning
 
-__all__ = ["HeterogeneityTest", "cochran_q", "breslow_day"]
+__all__ = ["HeterogeneityTest", "Heterogeneity", "cochran_q", "breslow_day",
+           "heterogeneity_across_strata"]
 
 
 @dataclass(frozen=True)
@@ -158,3 +162,46 @@ def breslow_day(y, t, labels) -> HeterogeneityTest:
                              "Breslow-Day test with Tarone's correction (statsmodels)",
                              "odds ratio", len(tables), None, float(st.oddsratio_pooled),
                              excluded)
+
+
+@dataclass(frozen=True)
+class Heterogeneity:
+    """The ``heterogeneity`` block of ``results.json`` (field names are its keys).
+
+    ``cochran_q`` is None, with a ``note`` saying why, when fewer than 2 strata have a standard
+    error; ``breslow_day`` is set for binary outcomes only.
+    """
+
+    cochran_q: HeterogeneityTest | None
+    breslow_day: HeterogeneityTest | None = None
+    note: str | None = None
+
+    def to_dict(self) -> dict:
+        return fields_dict(self, optional=("breslow_day", "note"))
+
+
+def heterogeneity_across_strata(per_stratum, y, t, labels, *, binary: bool) -> Heterogeneity:
+    """Cochran's Q of the per-stratum estimates (and Breslow-Day for binary outcomes).
+
+    Parameters
+    ----------
+    per_stratum : list of dict
+        The headline's per-stratum rows (``estimate``, ``se``); rows without a positive finite
+        standard error are left out.
+    y, t, labels : arrays (n,)
+        The analysed rows, for Breslow-Day.
+    binary : bool
+        Whether the outcome is binary (adds Breslow-Day).
+
+    Returns
+    -------
+    Heterogeneity
+        Undefined (``cochran_q`` None and a note) with fewer than 2 usable strata.
+    """
+    usable = [s for s in per_stratum if s["se"] is not None and np.isfinite(s["se"]) and s["se"] > 0]
+    if len(usable) < 2:
+        return Heterogeneity(cochran_q=None, note="fewer than 2 strata with a standard error: "
+                                                  "heterogeneity across strata is not defined")
+    return Heterogeneity(
+        cochran_q=cochran_q([s["estimate"] for s in usable], [s["se"] for s in usable]),
+        breslow_day=breslow_day(y, t, labels) if binary else None)

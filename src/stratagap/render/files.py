@@ -16,6 +16,8 @@ from pathlib import Path
 
 from ..errors import InputError
 from ..result import AnalysisResult, to_json
+from ..stratify.balance import CSV_COLUMNS as BALANCE_COLUMNS
+from .tables import STRATA_COLUMNS, strata_with_estimates
 
 __all__ = ["prepare_folder", "write_atomic", "write_result", "DEMO_MARKER"]
 
@@ -86,23 +88,14 @@ def _csv(rows: list[dict], columns: list[str]) -> str:
     return buf.getvalue()
 
 
-BALANCE_COLUMNS = ["covariate", "level", "smd_before", "smd_after", "var_ratio_before",
-                   "var_ratio_after", "ks_before", "ks_after", "flagged"]
-STRATA_COLUMNS = ["stratum", "score_low", "score_high", "n_exposed", "n_reference", "n",
-                  "weight", "estimate", "se", "ci_low", "ci_high", "model"]
-
-
 def balance_csv(data: dict) -> str:
     """balance.csv: one row per balance term, from ``result.to_dict()``."""
-    return _csv(data["balance"].get("rows", []), BALANCE_COLUMNS)
+    return _csv(data["balance"]["rows"], BALANCE_COLUMNS)
 
 
 def strata_csv(data: dict) -> str:
     """strata.csv: the strata joined with the headline's per-stratum estimates."""
-    per = {row["stratum"]: row for row in data["adjusted"].get("per_stratum", [])}
-    strata_rows = [{**row, **{k: v for k, v in per.get(row.get("stratum"), {}).items()
-                              if k not in row}} for row in data["strata"]]
-    return _csv(strata_rows, STRATA_COLUMNS)
+    return _csv(strata_with_estimates(data), STRATA_COLUMNS)
 
 
 def write_result(result: AnalysisResult, folder: Path, *, report: bool = True) -> list[Path]:

@@ -4,15 +4,9 @@ from __future__ import annotations
 
 import textwrap
 
+from .formatting import format_number as _n, format_p as _p
+
 __all__ = ["render_summary"]
-
-
-def _n(x, digits=2):
-    return "n/a" if x is None else f"{x:.{digits}f}"
-
-
-def _p(p):
-    return "n/a" if p is None else ("< 0.0001" if p < 1e-4 else f"{p:.4f}")
 
 
 def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) -> str:
@@ -23,12 +17,12 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
     lines = [
         f"stratagap: {q['outcome']} by {q['exposure']} "
         f"({q['exposed_value']} vs {q['reference_value']}), {q['outcome_type']} outcome",
-        f"  rows read {flow.get('rows_read')} -> analysed {data['n_used']} "
+        f"  rows read {flow['rows_read']} -> analysed {data['n_used']} "
         f"(exposed {flow['analysed_by_group']['exposed']}, reference "
         f"{flow['analysed_by_group']['reference']})",
         f"  estimand: {q['population']}",
-        f"  strata: {len(data['strata'])}; max |SMD| before {_n(data['balance'].get('max_abs_smd_before'), 3)}"
-        f", after {_n(data['balance'].get('max_abs_smd_after'), 3)}",
+        f"  strata: {len(data['strata'])}; max |SMD| before {_n(data['balance']['max_abs_smd_before'], 3)}"
+        f", after {_n(data['balance']['max_abs_smd_after'], 3)}",
         f"  crude {crude['measure']}: {_n(crude['estimate'])} "
         f"({level}% CI {_n(crude['ci_low'])} to {_n(crude['ci_high'])})",
         f"  adjusted {adj['measure']}: {_n(adj['estimate'])} "
@@ -38,17 +32,16 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
         key = q["estimand"].lower()
         lines.append(f"  TRUE effect (invented data, {q['estimand']} in the analysed population): "
                      f"{truth[key]:.2f}")
-    lines.append(f"  permutation test ({test.get('statistic_kind')}, {test.get('null')}): "
-                 f"p = {_p(test.get('p_value'))} [{test.get('engine')}, {test.get('resamples')} resamples]")
-    sens = data.get("sensitivity") or {}
-    ev = sens.get("e_value") or {}
-    if sens:
-        lines.append(f"  sensitivity: Γ threshold {_n(sens.get('gamma_threshold'))}; "
-                     f"E-value {_n(ev.get('point'))} (CI limit {_n(ev.get('ci_limit'))})")
-    for row in data.get("cross_checks") or []:
-        lines.append(f"  cross-check {row.get('method')}: {_n(row.get('estimate'))} "
-                     f"({_n(row.get('ci_low'))} to {_n(row.get('ci_high'))})")
-    if data.get("warnings"):
+    lines.append(f"  permutation test ({test['statistic_kind']}, {test['null']}): "
+                 f"p = {_p(test['p_value'])} [{test['engine']}, {test['resamples']} resamples]")
+    sens = data["sensitivity"]
+    ev = sens["e_value"] or {}  # None when the E-value is undefined
+    lines.append(f"  sensitivity: Γ threshold {_n(sens['gamma_threshold'])}; "
+                 f"E-value {_n(ev.get('point'))} (CI limit {_n(ev.get('ci_limit'))})")
+    for row in data["cross_checks"]:
+        lines.append(f"  cross-check {row['method']}: {_n(row['estimate'])} "
+                     f"({_n(row['ci_low'])} to {_n(row['ci_high'])})")
+    if data["warnings"]:
         lines.append(f"  warnings ({len(data['warnings'])}):")
         for w in data["warnings"]:
             lines.extend(textwrap.wrap(f"- {w['message']}", width, initial_indent="    ",

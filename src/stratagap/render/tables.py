@@ -12,14 +12,25 @@ from functools import cached_property
 
 import pandas as pd
 
-__all__ = ["ResultTables"]
+from ..stratify.balance import TABLE_COLUMNS as BALANCE_COLUMNS
 
-BALANCE_COLUMNS = ["covariate", "level", "kind", "smd_before", "smd_after", "var_ratio_before",
-                   "var_ratio_after", "ks_before", "ks_after", "flagged"]
+__all__ = ["ResultTables", "strata_with_estimates", "BALANCE_COLUMNS", "STRATA_COLUMNS"]
+
+#: Columns of ``strata.csv`` and the leading columns of ``result.tables.strata``.
 STRATA_COLUMNS = ["stratum", "score_low", "score_high", "n_exposed", "n_reference", "n", "weight",
                   "estimate", "se", "ci_low", "ci_high", "model"]
 CROSS_CHECK_COLUMNS = ["method", "estimate", "se", "ci_low", "ci_high", "measure", "estimand",
                        "estimand_kind", "population", "se_method"]
+
+
+def strata_with_estimates(data: dict) -> list[dict]:
+    """The ``strata`` rows of a result dict, each joined with the headline's estimate for that
+    stratum (the fields of ``adjusted.per_stratum`` that the stratum row lacks: ``estimate``,
+    ``se``, ``ci_low``, ``ci_high``, ``model``, ...). A stratum without an estimate row keeps
+    only its own fields. The one join behind ``strata.csv``, this table and the report."""
+    per = {row["stratum"]: row for row in data["adjusted"]["per_stratum"]}
+    return [{**row, **{k: v for k, v in per.get(row["stratum"], {}).items() if k not in row}}
+            for row in data["strata"]]
 
 
 def _frame(rows, columns) -> pd.DataFrame:
@@ -47,15 +58,12 @@ class ResultTables:
     @cached_property
     def balance(self) -> pd.DataFrame:
         """One row per covariate (and dummy level): SMD, variance ratio and KS, before and after."""
-        return _frame((self._data.get("balance") or {}).get("rows"), BALANCE_COLUMNS)
+        return _frame(self._data["balance"]["rows"], BALANCE_COLUMNS)
 
     @cached_property
     def strata(self) -> pd.DataFrame:
         """One row per stratum: score range, counts by group, weight and the stratum's effect."""
-        per = {r.get("stratum"): r for r in (self._data.get("adjusted") or {}).get("per_stratum") or []}
-        rows = [{**row, **{k: v for k, v in per.get(row.get("stratum"), {}).items() if k not in row}}
-                for row in self._data.get("strata") or []]
-        return _frame(rows, STRATA_COLUMNS)
+        return _frame(strata_with_estimates(self._data), STRATA_COLUMNS)
 
     @cached_property
     def baseline(self) -> pd.DataFrame:
@@ -66,7 +74,7 @@ class ResultTables:
     @cached_property
     def cross_checks(self) -> pd.DataFrame:
         """The cross-check estimators (IPW, augmented IPW, standardization), one row each."""
-        return _frame(self._data.get("cross_checks"), CROSS_CHECK_COLUMNS)
+        return _frame(self._data["cross_checks"], CROSS_CHECK_COLUMNS)
 
     def __repr__(self) -> str:
         return "ResultTables(balance, strata, baseline, cross_checks)"

@@ -8,7 +8,7 @@ follow.
 
 from __future__ import annotations
 
-import math
+from .formatting import format_number as _fmt, format_p_relation as _fmt_p
 
 __all__ = ["write_verdict"]
 
@@ -21,25 +21,13 @@ def _get(obj, name, default=None):
     return getattr(obj, name, default)
 
 
-def _fmt(x, digits=2) -> str:
-    if x is None or (isinstance(x, float) and not math.isfinite(x)):
-        return "n/a"
-    return f"{x:.{digits}f}"
-
-
-def _fmt_p(p) -> str:
-    if p is None:
-        return "n/a"
-    return "< 0.0001" if p < 1e-4 else f"= {p:.4f}" if p < 0.01 else f"= {p:.3f}"
-
-
 def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_checks,
                   negative_control, overlap) -> str:
     """Return the verdict paragraph (plain text)."""
     null = 1.0 if _get(adjusted, "measure", "") in ("risk ratio", "odds ratio") else 0.0
     lo, hi = _get(adjusted, "ci_low"), _get(adjusted, "ci_high")
     excludes = lo is not None and hi is not None and not (lo <= null <= hi)
-    main = tests["main"]
+    main = tests.main
     p = _get(main, "p_value")
     rejects = p is not None and p < spec.alpha
     max_smd = _get(balance, "max_abs_smd_after")
@@ -60,15 +48,14 @@ def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_c
         parts.append(f"After stratification the largest absolute standardized mean difference is "
                      f"{_fmt(max_smd, 3)} ({'within' if balanced else 'above'} the 0.1 threshold, "
                      f"common practice).")
-    threshold = sensitivity.get("threshold") if isinstance(sensitivity, dict) else None
-    gamma = _get(threshold, "gamma")
-    e_point = _get(sensitivity.get("e_value"), "point") if isinstance(sensitivity, dict) else None
-    e_limit = _get(sensitivity.get("e_value"), "ci_limit") if isinstance(sensitivity, dict) else None
+    gamma = sensitivity.gamma_threshold
+    e_point = _get(sensitivity.e_value, "point")
+    e_limit = _get(sensitivity.e_value, "ci_limit")
     if gamma is not None:
         parts.append(
             f"An unmeasured confounder would have to change the odds of exposure within a stratum by "
             f"a factor of Γ = {_fmt(gamma)} to make the one-sided test lose significance at "
-            f"{_fmt(sensitivity['level'], 3)}.")
+            f"{_fmt(sensitivity.gamma_level, 3)}.")
     if e_point is not None:
         parts.append(f"E-value: {_fmt(e_point)} for the estimate and {_fmt(e_limit)} for the "
                      f"confidence limit closer to the null.")
@@ -81,11 +68,10 @@ def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_c
             parts.append(f"Cross-check estimators range from {_fmt(min(ests))} to {_fmt(max(ests))}; "
                          f"{agree} of {len(rows)} have a CI excluding the null.")
     if negative_control is not None:
-        nc_est = negative_control["estimate"]
         parts.append(
-            f"Negative-control outcome {negative_control['column']!r}: adjusted 'effect' "
-            f"{_fmt(_get(nc_est, 'estimate'))} (p {_fmt_p(_get(negative_control['test'], 'p_value'))})"
-            + ("; this is a residual-bias alarm." if negative_control["alarm"] else
+            f"Negative-control outcome {negative_control.column!r}: adjusted 'effect' "
+            f"{_fmt(negative_control.estimate.estimate)} (p {_fmt_p(negative_control.test.p_value)})"
+            + ("; this is a residual-bias alarm." if negative_control.alarm else
                "; no sign of residual bias from this check."))
     if excludes and rejects and balanced:
         summary = ("In short: the gap survives adjustment for the measured covariates. ")

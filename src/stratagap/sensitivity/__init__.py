@@ -9,19 +9,26 @@ Three views, each on the estimate or test the core pipeline reported:
   reaches alpha (Rosenbaum 2002, ch. 4; Gastwirth, Krieger & Rosenbaum 2000);
 * :func:`tipping_grid` and :func:`covariate_benchmarks` - bias-corrected estimates for a binary
   unmeasured confounder over a grid, the tipping curve, and measured covariates as benchmarks
-  (Lin, Psaty & Kronmal 1998; caveat of Cinelli & Hazlett 2020).
+  (Lin, Psaty & Kronmal 1998; caveat of Cinelli & Hazlett 2020);
+* :func:`sensitivity_analysis` - the three together, as the analysis's ``sensitivity`` block;
+  :func:`negative_control_check` - the residual-bias check on a negative-control outcome
+  (Lipsitch, Tchetgen Tchetgen & Cohen 2010).
 
 Inputs are the arrays of the pipeline contract (``t`` int8, ``labels`` int64 with -1 set aside,
 ``estimand`` "ate"/"att") and the headline estimates; results are frozen dataclasses with
 ``to_dict()``.
 """
 
-from ._evalue import RARE_OUTCOME_THRESHOLD, EValue, e_value
+from ._evalue import RARE_OUTCOME_THRESHOLD, EValue, e_value, headline_e_value, pooled_sd
 from ._gamma_bounds import DEFAULT_GAMMAS, GAMMA_CAP, GammaBounds, SensitivityValue, gamma_bounds, sensitivity_value
 from ._tipping import BENCHMARK_CAVEAT, TippingGrid, covariate_benchmarks, tipping_grid
+from .analysis import Sensitivity, sensitivity_analysis
+from .negative_control import NegativeControl, negative_control_check
 
 __all__ = [
     "e_value", "EValue", "RARE_OUTCOME_THRESHOLD",
     "gamma_bounds", "sensitivity_value", "GammaBounds", "SensitivityValue", "DEFAULT_GAMMAS", "GAMMA_CAP",
     "tipping_grid", "covariate_benchmarks", "TippingGrid", "BENCHMARK_CAVEAT",
+    "headline_e_value", "pooled_sd", "sensitivity_analysis", "Sensitivity",
+    "negative_control_check", "NegativeControl",
 ]

@@ -8,14 +8,16 @@ measured covariates, to fully explain away the observed association.
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import asdict, dataclass
 
+import numpy as np
 from scipy import stats
 
-from ..errors import InputError
+from ..errors import InputError, ModelWarning
 from .._base.jsonable import jsonable as _jsonable
 
-__all__ = ["EValue", "e_value", "RARE_OUTCOME_THRESHOLD"]
+__all__ = ["EValue", "e_value", "headline_e_value", "pooled_sd", "RARE_OUTCOME_THRESHOLD"]
 
 #: Outcome risk at or below which an odds ratio is read as a risk ratio (VanderWeele & Ding 2017).
 RARE_OUTCOME_THRESHOLD = 0.15
@@ -223,3 +225,33 @@ def e_value(estimate, ci_low, ci_high, *, measure, outcome_sd=None, se=None, alp
                   limit=limit, measure=measure, alpha=alpha, conversion=conversion,
                   estimate=estimate, ci_low=ci_low, ci_high=ci_high,
                   outcome_sd=outcome_sd, baseline_risk=baseline_risk)
+
+
+def pooled_sd(y, t) -> float:
+    """Pooled within-group SD of the outcome (the E-value's standardizer for mean differences).
+
+    sqrt(((n1 - 1) s1^2 + (n0 - 1) s0^2) / (n - 2)), the SD of Cohen's d that
+    VanderWeele & Ding (2017) standardize by.
+    """
+    y1, y0 = y[t == 1], y[t == 0]
+    pooled = ((len(y1) - 1) * y1.var(ddof=1) + (len(y0) - 1) * y0.var(ddof=1)) / (len(y) - 2)
+    return float(np.sqrt(pooled))
+
+
+def headline_e_value(adjusted, risk_ratio, y, t, *, binary: bool, alpha: float) -> EValue | None:
+    """The E-value the analysis reports, on the scale the outcome calls for.
+
+    Binary outcomes: the E-value of the standardized (marginal) risk ratio, as VanderWeele &
+    Ding (2017) recommend, whatever the headline measure; None, with a ModelWarning, when the
+    ratio or a limit is undefined (a standardized risk of 0 or 1). Continuous outcomes: the
+    headline mean difference standardized by the pooled within-group SD (:func:`pooled_sd`).
+    """
+    if binary:
+        rr = risk_ratio
+        if all(v is not None and np.isfinite(v) and v > 0 for v in (rr.estimate, rr.ci_low, rr.ci_high)):
+            return e_value(rr.estimate, rr.ci_low, rr.ci_high, measure="rr", alpha=alpha)
+        warnings.warn("E-value not computed: the standardized risk ratio or a confidence limit "
+                      "is undefined (a standardized risk of 0 or 1).", ModelWarning)
+        return None
+    return e_value(adjusted.estimate, adjusted.ci_low, adjusted.ci_high, measure="difference",
+                   outcome_sd=pooled_sd(y, t), se=adjusted.se, alpha=alpha)

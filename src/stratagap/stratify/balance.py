@@ -17,13 +17,16 @@ import numpy as np
 
 from ..errors import BalanceWarning, InputError
 
-__all__ = ["BalanceResult", "balance_table", "smd_threshold", "CSV_COLUMNS"]
+__all__ = ["BalanceResult", "balance_table", "smd_threshold", "CSV_COLUMNS", "TABLE_COLUMNS"]
 
 #: |SMD| above this is flagged (common practice, e.g. Austin 2009).
 smd_threshold = 0.1
-#: Columns of ``balance.csv``.
+#: Columns of ``balance.csv`` (and of :meth:`BalanceResult.to_frame`).
 CSV_COLUMNS = ["covariate", "level", "smd_before", "smd_after", "var_ratio_before",
                "var_ratio_after", "ks_before", "ks_after", "flagged"]
+#: Leading columns of the notebook table ``result.tables.balance``: the CSV's, with the term's
+#: ``kind`` after its level (the CSV leaves ``kind`` out to keep its documented columns).
+TABLE_COLUMNS = CSV_COLUMNS[:2] + ["kind"] + CSV_COLUMNS[2:]
 
 
 @dataclass(frozen=True)

@@ -10,18 +10,12 @@ from __future__ import annotations
 import json
 import math
 
+from ..formatting import format_value as _f
+from ..tables import strata_with_estimates
 from .baseline import BASELINE_COLUMNS, analysed_raw, baseline_table, header as baseline_header
 from .flow import flow_steps
 
 __all__ = ["build_context", "spec_toml"]
-
-
-def _f(x, digits=2):
-    if x is None or (isinstance(x, float) and not math.isfinite(x)):
-        return "n/a"
-    if isinstance(x, (int, float)) and abs(x) != 0 and (abs(x) < 10 ** -digits or abs(x) >= 1e6):
-        return f"{x:.{max(digits, 2)}g}"
-    return f"{x:,.{digits}f}"
 
 
 def _estimate_row(label, est, level):
@@ -37,9 +31,9 @@ def _estimate_row(label, est, level):
 
 def spec_toml(data: dict) -> str:
     """The analysis as a TOML file that ``stratagap analyze --spec`` reads back."""
-    spec = dict(data.get("spec") or {})
+    spec = dict(data["spec"])
     lines = ["[analysis]"]
-    file = (data.get("source") or {}).get("file")
+    file = data["source"].get("file")
     if file:
         lines.append(f"data = {json.dumps(str(file), ensure_ascii=False)}")
     for key, value in spec.items():
@@ -50,17 +44,16 @@ def spec_toml(data: dict) -> str:
 
 
 def _strata_rows(data):
-    per = {row.get("stratum"): row for row in (data.get("adjusted") or {}).get("per_stratum") or []}
     out = []
-    for row in data.get("strata") or []:
-        p = per.get(row.get("stratum"), {})
-        out.append({"stratum": int(row.get("stratum", 0)) + 1,
-                    "range": f"{_f(row.get('score_low'), 3)} to {_f(row.get('score_high'), 3)}",
-                    "n_exposed": row.get("n_exposed"), "n_reference": row.get("n_reference"),
-                    "n": row.get("n"), "weight": _f(row.get("weight", p.get("weight")), 3),
-                    "estimate": _f(p.get("estimate")),
-                    "ci": f"{_f(p.get('ci_low'))} to {_f(p.get('ci_high'))}" if p else "n/a",
-                    "model": p.get("model", "")})
+    for row in strata_with_estimates(data):
+        joined = "ci_low" in row  # the stratum has a per-stratum estimate row
+        out.append({"stratum": int(row["stratum"]) + 1,
+                    "range": f"{_f(row['score_low'], 3)} to {_f(row['score_high'], 3)}",
+                    "n_exposed": row["n_exposed"], "n_reference": row["n_reference"],
+                    "n": row["n"], "weight": _f(row["weight"], 3),
+                    "estimate": _f(row.get("estimate")),
+                    "ci": f"{_f(row['ci_low'])} to {_f(row['ci_high'])}" if joined else "n/a",
+                    "model": row.get("model", "")})
     return out
 
 
@@ -79,11 +72,11 @@ def _test_rows(test):
 
 def build_context(view, figures: dict, *, compact: bool) -> dict:
     data = view.data
-    q = data.get("question") or {}
-    adj = data.get("adjusted") or {}
-    alpha = float((data.get("spec") or {}).get("alpha") or adj.get("alpha") or 0.05)
+    q = data["question"]
+    adj = data["adjusted"]
+    alpha = float(data["spec"]["alpha"])
     level = int(round(100 * (1 - alpha)))
-    effects = [_estimate_row("crude (unadjusted)", data.get("crude"), level),
+    effects = [_estimate_row("crude (unadjusted)", data["crude"], level),
                _estimate_row("adjusted (headline)", adj, level),
                _estimate_row("plain stratified difference", adj.get("plain_stratified"), level),
                _estimate_row("constant effect by test inversion", adj.get("constant_effect"), level),
@@ -93,41 +86,41 @@ def build_context(view, figures: dict, *, compact: bool) -> dict:
             effects.append(_estimate_row(f"Mantel-Haenszel {key.replace('_', ' ')}", est, level))
     cross = [_estimate_row(r.get("method", ""), r, level) | {"kind": r.get("estimand_kind", ""),
                                                              "se_method": r.get("se_method", "")}
-             for r in data.get("cross_checks") or []]
-    sens = data.get("sensitivity") or {}
-    tip = sens.get("tipping") or {}
+             for r in data["cross_checks"]]
+    sens = data["sensitivity"]
+    tip = sens["tipping"]
     raw = analysed_raw(view)
     base = baseline_table(view)
     balance_rows = [{**r, "label": r.get("covariate", "") if r.get("level") in (None, "")
                      else f"{r.get('covariate')}: {r.get('level')}"}
-                    for r in (data.get("balance") or {}).get("rows") or []]
+                    for r in data["balance"]["rows"]]
     hetero = []
-    for key, h in (data.get("heterogeneity") or {}).items():
+    for key, h in data["heterogeneity"].items():
         if isinstance(h, dict):
             hetero.append({"label": h.get("method", key), "statistic": _f(h.get("statistic"), 3),
                            "df": h.get("df"), "p": h.get("p_value")})
-    source = data.get("source") or {}
+    source = data["source"]
     run = getattr(view, "run", None) or {}
     return {
         "compact": compact, "q": q, "source": source, "data": data, "level": level,
-        "alpha": alpha, "flow": data.get("flow") or {}, "flow_steps": flow_steps(data.get("flow") or {}),
-        "warnings": data.get("warnings") or [], "overlap": data.get("overlap") or {},
-        "propensity": data.get("propensity") or {}, "balance": data.get("balance") or {},
+        "alpha": alpha, "flow": data["flow"], "flow_steps": flow_steps(data["flow"]),
+        "warnings": data["warnings"], "overlap": data["overlap"],
+        "propensity": data["propensity"], "balance": data["balance"],
         "balance_rows": balance_rows, "baseline_header": [c for c in BASELINE_COLUMNS],
         "baseline_header_text": baseline_header(data),
         "baseline_rows": [{k: (None if isinstance(v, float) and not math.isfinite(v) else v)
                            for k, v in row.items()} for row in base.to_dict("records")], "baseline_has_raw": raw is not None,
-        "strata_rows": _strata_rows(data), "strata_info": data.get("strata_info") or {},
-        "test": data.get("test") or {}, "test_rows": _test_rows(data.get("test") or {}),
+        "strata_rows": _strata_rows(data), "strata_info": data["strata_info"],
+        "test": data["test"], "test_rows": _test_rows(data["test"]),
         "effects": [e for e in effects if e], "heterogeneity": hetero,
         "adjusted": adj, "cross": cross, "weights": data.get("cross_check_weights"),
         "sens": sens, "e_value": sens.get("e_value") or {},
-        "gamma": sens.get("gamma_threshold_detail") or {},
-        "gamma_bounds": sens.get("gamma_bounds") or {}, "tipping": tip,
+        "gamma": sens["gamma_threshold_detail"],
+        "gamma_bounds": sens["gamma_bounds"], "tipping": tip,
         "benchmarks": tip.get("benchmarks") or [],
-        "negative": data.get("negative_control"), "verdict": data.get("verdict") or "",
-        "cautions": data.get("cautions") or [], "figures": figures,
+        "negative": data["negative_control"], "verdict": data["verdict"],
+        "cautions": data["cautions"], "figures": figures,
         "spec_toml": spec_toml(data), "command": run.get("command") or source.get("command"),
-        "seed": (data.get("spec") or {}).get("seed"), "run": run,
+        "seed": data["spec"]["seed"], "run": run,
         "versions": (run.get("versions") or {}), "fmt": _f,
     }

@@ -115,7 +115,7 @@ def view_of(result) -> ResultView:
     """
     if isinstance(result, ResultView):
         return result
-    main = result.tests["main"] if getattr(result, "tests", None) else None
+    main = result.tests.main if getattr(result, "tests", None) else None
     null = getattr(main, "null_distribution", None)
     weights = getattr(main, "null_weights", None)
     return ResultView(data=result.to_dict(), arrays=dict(getattr(result, "arrays", {}) or {}),

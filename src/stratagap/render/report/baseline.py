@@ -87,13 +87,12 @@ def baseline_table(result) -> pd.DataFrame:
     """
     v = view_of(result)
     data = v.data
-    rows = (data.get("balance") or {}).get("rows", [])
-    covariates = list((data.get("covariates") or {}).get("covariates") or
+    rows = data["balance"]["rows"]
+    covariates = list(data["covariates"]["covariates"] or
                       dict.fromkeys(str(r.get("covariate")) for r in rows))
     raw = analysed_raw(v)
     t = np.asarray(v.arrays.get("t", []), dtype=int)
-    flow = data.get("flow") or {}
-    by = flow.get("analysed_by_group") or {}
+    by = data["flow"]["analysed_by_group"]
     n1 = int(t.sum()) if len(t) else by.get("exposed")
     n0 = int(len(t) - t.sum()) if len(t) else by.get("reference")
     out = [{"characteristic": "Number of people", "level": "", "summary": "count",

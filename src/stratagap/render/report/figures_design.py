@@ -46,9 +46,9 @@ def plot_overlap(result, *, bins: int = 40) -> Figure:
     score = np.asarray(v.arrays.get("score", []), dtype=float)
     t = np.asarray(v.arrays.get("t_all", []), dtype=int)
     keep = np.asarray(v.arrays.get("keep", np.ones(len(score), bool)), dtype=bool)
-    ov = v.data.get("overlap", {}) or {}
+    ov = v.data["overlap"]
     exposed_name, reference_name = _group_names(v.data)
-    auc = (v.data.get("propensity") or {}).get("auc")
+    auc = v.data["propensity"].get("auc")
     sub = "share of each group per score bin, each group on its own scale" + (
         f"; c-statistic {auc:.3f}" if auc is not None else "")
     fig, axes = new_figure("Where the two groups' propensity scores lie", sub, size=(7.2, 4.8),
@@ -130,7 +130,7 @@ def plot_balance(result, *, threshold: float = SMD_FLAG) -> Figure:
     matplotlib.figure.Figure
     """
     v = view_of(result)
-    rows = list((v.data.get("balance") or {}).get("rows", []))
+    rows = list(v.data["balance"]["rows"])
     height = 1.6 + 0.26 * max(len(rows), 3)
     fig, ax = new_figure("Covariate balance before and after adjustment on the score",
                          "absolute standardized mean difference (after: within strata, "

@@ -17,21 +17,16 @@ from matplotlib.figure import Figure
 from matplotlib.patches import Polygon
 from scipy import stats
 
+from ..formatting import format_p
 from ._style import ACCENT, ALERT, INK, MUTED, NEUTRAL, PALETTE, REFERENCE, new_figure, plain, view_of
 
 __all__ = ["plot_null_distribution", "plot_stratum_effects", "plot_cross_checks",
-           "plot_p_value_function", "null_value", "format_p"]
+           "plot_p_value_function", "null_value"]
 
 
 def null_value(measure) -> float:
     """The no-effect value on the measure's scale: 1 for ratios, 0 for differences."""
     return 1.0 if "ratio" in str(measure or "").lower() or str(measure) in ("rr", "or") else 0.0
-
-
-def format_p(p) -> str:
-    if p is None or (isinstance(p, float) and not math.isfinite(p)):
-        return "n/a"
-    return "< 0.0001" if p < 1e-4 else f"{p:.4f}"
 
 
 def _empty(ax, text):
@@ -52,7 +47,7 @@ def plot_null_distribution(result, *, bins: int = 50) -> Figure:
     matplotlib.figure.Figure
     """
     v = view_of(result)
-    test = v.data.get("test", {}) or {}
+    test = v.data["test"]
     obs = test.get("statistic")
     alt = test.get("alternative", "two-sided")
     engine = test.get("engine", "")
@@ -127,8 +122,8 @@ def plot_stratum_effects(result) -> Figure:
     matplotlib.figure.Figure
     """
     v = view_of(result)
-    adj = v.data.get("adjusted", {}) or {}
-    per = list(adj.get("per_stratum") or [])
+    adj = v.data["adjusted"]
+    per = list(adj["per_stratum"])
     level = int(round(100 * (1 - float(adj.get("alpha") or 0.05))))
     measure = adj.get("measure", "")
     ratio = "ratio" in str(measure)
@@ -179,7 +174,7 @@ def _rows_for_cross_checks(data: dict) -> list[tuple[str, dict, str]]:
     crude = data.get("crude")
     if crude:
         rows.append(("crude (unadjusted)", crude, NEUTRAL))
-    adj = data.get("adjusted") or {}
+    adj = data["adjusted"]
     if adj.get("estimate") is not None:
         rows.append(("strata + regression (headline)", adj, ACCENT))
     if adj.get("plain_stratified"):
@@ -204,7 +199,7 @@ def plot_cross_checks(result) -> Figure:
     matplotlib.figure.Figure
     """
     v = view_of(result)
-    adj = v.data.get("adjusted", {}) or {}
+    adj = v.data["adjusted"]
     measure = adj.get("measure", "")
     rows = _rows_for_cross_checks(v.data)
     level = int(round(100 * (1 - float(adj.get("alpha") or 0.05))))
@@ -265,8 +260,8 @@ def plot_p_value_function(result) -> Figure:
     matplotlib.figure.Figure
     """
     v = view_of(result)
-    adj = v.data.get("adjusted", {}) or {}
-    ce = adj.get("constant_effect") or {}
+    adj = v.data["adjusted"]
+    ce = adj.get("constant_effect") or {}  # None for binary outcomes
     alpha = float(adj.get("alpha") or v.data.get("spec", {}).get("alpha") or 0.05)
     tau, p = ce.get("curve_tau") or ce.get("tau_grid"), ce.get("curve_p") or ce.get("p_grid")
     measure = adj.get("measure", "")

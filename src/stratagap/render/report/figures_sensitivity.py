@@ -29,12 +29,12 @@ def plot_gamma_curve(result) -> Figure:
     matplotlib.figure.Figure
     """
     v = view_of(result)
-    sens = v.data.get("sensitivity", {}) or {}
-    curve = list(sens.get("gamma_curve") or [])
-    detail = sens.get("gamma_threshold_detail") or {}
-    level = sens.get("gamma_level") or detail.get("alpha")
-    bounds = sens.get("gamma_bounds") or {}
-    direction = sens.get("gamma_direction") or detail.get("direction", "")
+    sens = v.data["sensitivity"]
+    curve = list(sens["gamma_curve"])
+    detail = sens["gamma_threshold_detail"]
+    level = sens["gamma_level"]
+    bounds = sens["gamma_bounds"]
+    direction = sens["gamma_direction"]
     fig, ax = new_figure("How much hidden bias would erase significance?",
                          f"bound on the one-sided p-value ({direction}) if an unmeasured covariate "
                          "changes the odds of exposure by up to Γ")
@@ -93,7 +93,7 @@ def plot_tipping(result) -> Figure:
     matplotlib.figure.Figure
     """
     v = view_of(result)
-    tip = (v.data.get("sensitivity") or {}).get("tipping") or {}
+    tip = v.data["sensitivity"]["tipping"]
     measure = tip.get("measure", "difference")
     nv = null_value(measure)
     ratio = measure != "difference"

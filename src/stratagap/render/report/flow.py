@@ -29,22 +29,20 @@ def flow_steps(flow: dict) -> list[dict]:
         ``{"title", "n", "detail", "exits": [{"title", "n", "lines": [str]}]}``; the last box is
         the analysed sample.
     """
-    read = flow.get("rows_read")
-    used = flow.get("rows_used")
-    analysed = flow.get("rows_analysed", used)
+    read, used, analysed = flow["rows_read"], flow["rows_used"], flow["rows_analysed"]
     missing_exit = None
     if read is not None and used is not None:
-        by_col = {k: int(v) for k, v in (flow.get("dropped_missing_by_column") or {}).items() if v}
+        by_col = {k: int(v) for k, v in flow["dropped_missing_by_column"].items() if v}
         lines = ["by column: " + ", ".join(f"{k} {v:,}" for k, v in by_col.items())] if by_col else []
         if len(by_col) > 1:
             lines.append("(a row can miss several columns)")
-        by_group = _groups(flow.get("dropped_missing_by_group"))
+        by_group = _groups(flow["dropped_missing_by_group"])
         if by_group:
             lines.append(f"by group: {by_group}")
-        unknown = (flow.get("dropped_missing_by_group") or {}).get("unknown")
+        unknown = flow["dropped_missing_by_group"].get("unknown")
         if unknown:
             lines.append(f"group not recorded: {int(unknown):,}")
-        mo = flow.get("missing_outcome_by_group") or {}
+        mo = flow["missing_outcome_by_group"]
         if any((g or {}).get("n") for g in mo.values()):
             lines.append("missing outcome: " + ", ".join(
                 f"{k} {int(g.get('n') or 0):,} ({100 * float(g.get('share') or 0):.1f} %)"
@@ -53,17 +51,17 @@ def flow_steps(flow: dict) -> list[dict]:
                         "n": int(read) - int(used), "lines": lines}
     steps = [{"title": "Rows read", "n": read, "detail": "", "exits": [missing_exit] if missing_exit else []}]
     exits = []
-    trimmed = flow.get("trimmed_by_group") or {}
+    trimmed = flow["trimmed_by_group"]
     n_trim = sum(int(v) for v in trimmed.values())
     exits.append({"title": "Set aside by the overlap rule (trimming)", "n": n_trim,
                   "lines": [f"by group: {_groups(trimmed)}"] if trimmed else []})
-    lacking = flow.get("strata_set_aside_by_group") or {}
+    lacking = flow["strata_set_aside_by_group"]
     n_lack = sum(int(v) for v in lacking.values())
     if n_lack:
         exits.append({"title": "Set aside: strata lacking one group", "n": n_lack,
                       "lines": [f"by group: {_groups(lacking)}"]})
     steps.append({"title": "Complete cases", "n": used,
-                  "detail": _groups(flow.get("used_by_group")), "exits": exits})
+                  "detail": _groups(flow["used_by_group"]), "exits": exits})
     steps.append({"title": "Analysed", "n": analysed,
-                  "detail": _groups(flow.get("analysed_by_group")), "exits": []})
+                  "detail": _groups(flow["analysed_by_group"]), "exits": []})
     return steps

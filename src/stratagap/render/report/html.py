@@ -15,11 +15,12 @@ from pathlib import Path
 
 import jinja2
 
+from ..formatting import format_p
 from ._context import build_context
 from ._style import figure_bytes, view_of
 from .baseline import baseline_latex, baseline_markdown, baseline_table
 from .figures_design import plot_balance, plot_overlap
-from .figures_inference import (format_p, plot_cross_checks, plot_null_distribution,
+from .figures_inference import (plot_cross_checks, plot_null_distribution,
                                 plot_p_value_function, plot_stratum_effects)
 from .figures_sensitivity import plot_gamma_curve, plot_tipping
 

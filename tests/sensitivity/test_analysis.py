@@ -1,0 +1,69 @@
+"""Tests of stratagap.sensitivity.analysis (the sensitivity block) and of the E-value choice
+(stratagap.sensitivity._evalue.headline_e_value, pooled_sd)."""
+
+import json
+from types import SimpleNamespace
+
+import numpy as np
+import pytest
+
+from stratagap.errors import ModelWarning
+from stratagap.sensitivity import (DEFAULT_GAMMAS, e_value, gamma_bounds, headline_e_value, pooled_sd,
+                                   sensitivity_analysis, sensitivity_value)
+
+
+def test_pooled_sd_is_the_anova_within_group_sd():
+    rng = np.random.default_rng(4)
+    y = rng.normal(size=57)
+    t = (rng.random(57) < 0.4).astype(np.int8)
+    # closed form: within-group sum of squares over n - 2 (one-way ANOVA error mean square)
+    ss = sum(((y[t == g] - y[t == g].mean()) ** 2).sum() for g in (0, 1))
+    assert abs(pooled_sd(y, t) - np.sqrt(ss / (len(y) - 2))) < 1e-12
+
+
+def test_e_value_choice_follows_the_outcome_type():
+    rng = np.random.default_rng(5)
+    y = rng.normal(size=80)
+    t = np.repeat([0, 1], 40).astype(np.int8)
+    adjusted = SimpleNamespace(estimate=0.5, ci_low=0.1, ci_high=0.9, se=0.2)
+    rr = SimpleNamespace(estimate=1.8, ci_low=1.2, ci_high=2.7)
+    cont = headline_e_value(adjusted, None, y, t, binary=False, alpha=0.05)
+    assert cont == e_value(0.5, 0.1, 0.9, measure="difference", outcome_sd=pooled_sd(y, t),
+                           se=0.2, alpha=0.05)
+    binary = headline_e_value(adjusted, rr, y, t, binary=True, alpha=0.05)
+    assert binary == e_value(1.8, 1.2, 2.7, measure="rr", alpha=0.05)
+    # VanderWeele & Ding 2017: E = RR + sqrt(RR (RR - 1))
+    assert abs(binary.point - (1.8 + np.sqrt(1.8 * 0.8))) < 1e-12
+
+
+def test_undefined_risk_ratio_gives_no_e_value_and_a_warning():
+    rr = SimpleNamespace(estimate=1.8, ci_low=0.0, ci_high=np.inf)
+    with pytest.warns(ModelWarning, match="E-value not computed"):
+        assert headline_e_value(None, rr, None, None, binary=True, alpha=0.05) is None
+
+
+def test_block_is_the_stage_functions_and_round_trips():
+    rng = np.random.default_rng(6)
+    n = 200
+    labels = np.repeat(np.arange(4), n // 4).astype(np.int64)
+    x = rng.normal(size=n)
+    t = (rng.random(n) < 0.5).astype(np.int8)
+    y = 0.4 * t + x + rng.normal(size=n)
+    values = y - x
+    adjusted = SimpleNamespace(estimate=0.4, ci_low=0.1, ci_high=0.7, se=0.15)
+    out = sensitivity_analysis(values, t, labels, x[:, None], y, [], observed=-0.3,
+                               statistic="mean_difference", estimand="ate",
+                               alternative="two-sided", alpha=0.05, gammas=DEFAULT_GAMMAS,
+                               adjusted=adjusted, risk_ratio=None, binary=False)
+    # a negative observed statistic bounds the lower tail
+    assert out.gamma_direction == "less"
+    assert out.gamma_bounds == gamma_bounds(values, t, labels, estimand="ate",
+                                            statistic="mean_difference", direction="less",
+                                            gammas=DEFAULT_GAMMAS)
+    threshold = sensitivity_value(values, t, labels, estimand="ate", direction="less",
+                                  alpha=0.05, two_sided=True)
+    assert out.gamma_threshold_detail == threshold and out.gamma_level == threshold.alpha == 0.025
+    d = out.to_dict()
+    assert json.loads(json.dumps(d, allow_nan=False)) == d
+    assert list(d) == ["e_value", "gamma_threshold", "gamma_threshold_detail", "gamma_level",
+                       "gamma_direction", "gamma_curve", "gamma_bounds", "tipping"]
