@@ -84,3 +84,26 @@ def test_real_subprocess_bad_input_exit_code(tmp_path):
     assert proc.returncode == 2
     assert proc.stderr.count("\n") == 1 and "nope.csv" in proc.stderr
     assert "Traceback" not in proc.stderr
+
+
+def test_library_parameter_names_become_flags_on_the_command_line():
+    from stratagap.cli import as_flags
+    text = "`trim=common` would help; `n_strata` too; `covariates` is empty; `score` stays"
+    assert as_flags(text) == ("`--trim common` would help; `--strata` too; `--covariates` is "
+                              "empty; `score` stays")
+
+
+def test_warnings_in_the_printed_summary_name_flags(tmp_path, capsys):
+    import pandas as pd
+    from stratagap.cli import main
+    from stratagap.demo import make_shift_work_data
+    data = make_shift_work_data(n=600, seed=3).drop(columns=["_true_effect"])
+    data.loc[:40, "bmi"] = float("nan")
+    path = tmp_path / "d.csv"
+    data.to_csv(path, index=False)
+    code = main(["analyze", str(path), "--exposure", "shift", "--exposed-value", "nights",
+                 "--outcome", "systolic_bp", "--covariates", "age,bmi", "--missing", "indicator",
+                 "--resamples", "200"])
+    out = capsys.readouterr().out
+    assert code == 0
+    assert "`--missing indicator`" in out and "`missing=indicator`" not in out

@@ -11,6 +11,7 @@ from __future__ import annotations
 import argparse
 import hashlib
 import os
+import re
 import shlex
 import sys
 import traceback
@@ -60,6 +61,22 @@ _OPTIONS = [
     ("--truncate-weights", "truncate_weights", str, "truncate IP weights at percentiles LO,HI"),
     ("--batch-size", "batch_size", str, "resamples per batch (memory); results do not depend on it"),
 ]
+
+
+# Library messages name parameters (`covariates`, `trim=common`); the command line names flags.
+_FLAG_OF = {dest: flag for flag, dest, _typ, _text in _OPTIONS} | {
+    "censoring_weights": "--censoring-weights", "encoding": "--encoding", "out": "--out",
+    "overwrite": "--overwrite", "spec": "--spec"}
+
+
+def as_flags(text: str) -> str:
+    """Spell the parameters quoted in a library message as the flags that set them."""
+    def flag(match):
+        name, value = match.group(1), match.group(2)
+        if name not in _FLAG_OF:
+            return match.group(0)
+        return f"`{_FLAG_OF[name]}`" if value is None else f"`{_FLAG_OF[name]} {value}`"
+    return re.sub(r"`([a-z_]+)(?:=([^`]*))?`", flag, text)
 
 
 def _build_parser() -> argparse.ArgumentParser:
@@ -211,7 +228,7 @@ def _print(result, args, truth=None):
     if args.format == "json":
         sys.stdout.write(result.to_json())
     else:
-        sys.stdout.write(render_summary(result.to_dict(), truth=truth))
+        sys.stdout.write(as_flags(render_summary(result.to_dict(), truth=truth)))
 
 
 def main(argv=None) -> int:
@@ -228,7 +245,7 @@ def main(argv=None) -> int:
             return _run_analyze(args)
         return _run_demo(args)
     except InputError as exc:
-        message = " ".join(str(exc).split())
+        message = as_flags(" ".join(str(exc).split()))
         print(f"stratagap: error: {message}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:

@@ -102,8 +102,8 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
     clock.lap("data")
     binary = prepared.outcome_type == "binary"
     if spec.measure != "difference" and not binary:
-        raise InputError(f"`--measure {spec.measure}` needs a binary outcome; "
-                         f"{spec.outcome!r} is continuous: use --measure difference")
+        raise InputError(f"`measure={spec.measure}` needs a binary outcome; "
+                         f"{spec.outcome!r} is continuous: use `measure=difference`")
     crude = _effects.crude(prepared.y, prepared.t, prepared.outcome_type, alpha=spec.alpha)
     clock.lap("effects")
 

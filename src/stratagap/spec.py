@@ -16,6 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ._base.checks import check_alpha
 from .errors import InputError
 from ._base.rng import check_seed
 
@@ -114,7 +115,7 @@ def _int_in(value, lo, hi, flag, hint=""):
 
 def _check(spec: AnalysisSpec) -> None:
     set_ = object.__setattr__
-    for name, flag in (("exposure", "--exposure"), ("outcome", "--outcome")):
+    for name, flag in (("exposure", "exposure"), ("outcome", "outcome")):
         value = getattr(spec, name)
         if not isinstance(value, str) or not value:
             raise InputError(f"`{flag}` names a column of the data file; got {value!r}")
@@ -124,44 +125,38 @@ def _check(spec: AnalysisSpec) -> None:
             covs = [c.strip() for c in covs.split(",") if c.strip()]
         set_(spec, "covariates", tuple(covs))
     if not spec.covariates and not spec.formula:
-        raise InputError("`--covariates` is empty: name the measured confounders (A,B,C) or give --formula")
+        raise InputError("`covariates` is empty: name the measured confounders (A,B,C) or give `formula`")
     if spec.exposed_value is not None:
         set_(spec, "exposed_value", str(spec.exposed_value))
-    _choice(spec.estimand, ESTIMANDS, "--estimand")
-    _choice(spec.alternative, ALTERNATIVES, "--alternative")
-    _choice(spec.engine, ENGINES, "--engine")
-    _choice(spec.statistic, STATISTICS, "--statistic")
-    _choice(spec.measure, MEASURES, "--measure")
-    _choice(spec.trim, TRIM_RULES, "--trim")
-    _choice(spec.score_model, SCORE_MODELS, "--score-model")
-    _choice(spec.strata_method, STRATA_METHODS, "--strata-method")
-    _choice(spec.missing, MISSING_POLICIES, "--missing")
-    _choice(spec.outcome_type, OUTCOME_TYPES, "--outcome-type")
-    set_(spec, "n_strata", _int_in(spec.n_strata, 1, 1000, "--strata"))
-    set_(spec, "min_per_group", _int_in(spec.min_per_group, 1, 10_000, "--min-per-group"))
-    set_(spec, "folds", _int_in(spec.folds, 2, 50, "--folds"))
-    set_(spec, "interaction_min_extra", _int_in(spec.interaction_min_extra, 0, 1000, "--interaction-min-extra"))
-    set_(spec, "resamples", _int_in(spec.resamples, 1, MAX_RESAMPLES, "--resamples",
+    _choice(spec.estimand, ESTIMANDS, "estimand")
+    _choice(spec.alternative, ALTERNATIVES, "alternative")
+    _choice(spec.engine, ENGINES, "engine")
+    _choice(spec.statistic, STATISTICS, "statistic")
+    _choice(spec.measure, MEASURES, "measure")
+    _choice(spec.trim, TRIM_RULES, "trim")
+    _choice(spec.score_model, SCORE_MODELS, "score_model")
+    _choice(spec.strata_method, STRATA_METHODS, "strata_method")
+    _choice(spec.missing, MISSING_POLICIES, "missing")
+    _choice(spec.outcome_type, OUTCOME_TYPES, "outcome_type")
+    set_(spec, "n_strata", _int_in(spec.n_strata, 1, 1000, "n_strata"))
+    set_(spec, "min_per_group", _int_in(spec.min_per_group, 1, 10_000, "min_per_group"))
+    set_(spec, "folds", _int_in(spec.folds, 2, 50, "folds"))
+    set_(spec, "interaction_min_extra", _int_in(spec.interaction_min_extra, 0, 1000, "interaction_min_extra"))
+    set_(spec, "resamples", _int_in(spec.resamples, 1, MAX_RESAMPLES, "resamples",
                                      "; 10,000 is the default and plenty for p-values near 0.05"))
     if spec.batch_size is not None:
-        set_(spec, "batch_size", _int_in(spec.batch_size, 1, MAX_RESAMPLES, "--batch-size"))
-    set_(spec, "seed", check_seed(spec.seed, "--seed"))
-    try:
-        alpha = float(spec.alpha)
-    except (TypeError, ValueError):
-        raise InputError(f"`--alpha` must be a number in (0, 0.5]; got {spec.alpha!r}") from None
-    if not (0 < alpha <= 0.5):
-        raise InputError(f"`--alpha` must be a number in (0, 0.5]; got {spec.alpha!r}, e.g. use 0.05")
-    set_(spec, "alpha", alpha)
+        set_(spec, "batch_size", _int_in(spec.batch_size, 1, MAX_RESAMPLES, "batch_size"))
+    set_(spec, "seed", check_seed(spec.seed, "seed"))
+    set_(spec, "alpha", check_alpha(spec.alpha, "analysis"))
     grid = spec.gamma_grid
     if isinstance(grid, str):
         grid = [g for g in grid.split(",") if g.strip()]
     try:
         grid = tuple(sorted({float(g) for g in grid}))
     except (TypeError, ValueError):
-        raise InputError(f"`--gamma-grid` must be numbers >= 1 separated by commas; got {spec.gamma_grid!r}") from None
+        raise InputError(f"`gamma_grid` must be numbers >= 1 separated by commas; got {spec.gamma_grid!r}") from None
     if not grid or grid[0] < 1 or not all(math.isfinite(g) and g <= 1e6 for g in grid):
-        raise InputError(f"`--gamma-grid` values must be finite numbers in [1, 1e6], e.g. 1,1.5,2,3; got {spec.gamma_grid!r}")
+        raise InputError(f"`gamma_grid` values must be finite numbers in [1, 1e6], e.g. 1,1.5,2,3; got {spec.gamma_grid!r}")
     set_(spec, "gamma_grid", grid)
     if spec.truncate_weights is not None:
         tw = spec.truncate_weights
@@ -170,14 +165,14 @@ def _check(spec: AnalysisSpec) -> None:
         try:
             lo, hi = (float(v) for v in tw)
         except (TypeError, ValueError):
-            raise InputError(f"`--truncate-weights` takes two percentiles LO,HI such as 1,99; got {spec.truncate_weights!r}") from None
+            raise InputError(f"`truncate_weights` takes two percentiles LO,HI such as 1,99; got {spec.truncate_weights!r}") from None
         if not (0 <= lo < hi <= 100):
-            raise InputError(f"`--truncate-weights` needs 0 <= LO < HI <= 100; got {lo},{hi}")
+            raise InputError(f"`truncate_weights` needs 0 <= LO < HI <= 100; got {lo},{hi}")
         set_(spec, "truncate_weights", (lo, hi))
     if spec.strata_column is not None and spec.strata_method == "adaptive":
-        raise InputError("`--strata-column` and `--strata-method adaptive` exclude each other: choose one")
+        raise InputError("`strata_column` and `strata_method=adaptive` exclude each other: choose one")
     if spec.measure != "difference" and spec.outcome_type == "continuous":
-        raise InputError(f"`--measure {spec.measure}` needs a binary outcome; use --measure difference")
+        raise InputError(f"`measure={spec.measure}` needs a binary outcome; use `measure=difference`")
 
 
 #: Keys accepted in a TOML analysis file (the [analysis] table or the top level), mapped to fields.
@@ -194,11 +189,11 @@ def load_spec_file(path: str | Path) -> dict:
     """
     path = Path(path)
     if not path.is_file():
-        raise InputError(f"`--spec` file {str(path)!r} does not exist; give the path of a TOML analysis file")
+        raise InputError(f"`spec` file {str(path)!r} does not exist; give the path of a TOML analysis file")
     try:
         raw = tomllib.loads(path.read_text(encoding="utf-8"))
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise InputError(f"`--spec` file {path.name!r} is not valid TOML ({str(exc).splitlines()[0]}); fix the file") from None
+        raise InputError(f"`spec` file {path.name!r} is not valid TOML ({str(exc).splitlines()[0]}); fix the file") from None
     raw = raw.get("analysis", raw)
     out = {}
     for key, value in raw.items():
@@ -206,7 +201,7 @@ def load_spec_file(path: str | Path) -> dict:
         if norm not in _TOML_KEYS:
             close = difflib.get_close_matches(norm, list(_TOML_KEYS), n=3)
             hint = f"did you mean {', '.join(close)}?" if close else "use the long option names, e.g. exposure, outcome, covariates, strata"
-            raise InputError(f"`--spec` file {path.name!r}: unknown key {key!r}; {hint}")
+            raise InputError(f"`spec` file {path.name!r}: unknown key {key!r}; {hint}")
         out[_TOML_KEYS[norm]] = value
     if "data_path" in out and not Path(out["data_path"]).is_absolute():
         out["data_path"] = str((path.parent / out["data_path"]).resolve())

@@ -18,15 +18,15 @@ BLOCK = 250
 def check_seed(seed, name: str = "seed") -> int:
     """Return ``seed`` as a non-negative Python int, or raise :class:`InputError`."""
     if isinstance(seed, (bool, np.bool_)):
-        raise InputError(f"`{name}` must be a non-negative integer, got {seed!r}; pass e.g. --seed 2026")
+        raise InputError(f"`{name}` must be a non-negative integer, got {seed!r}; pass e.g. `seed=2026`")
     if isinstance(seed, (int, np.integer)):
         seed = int(seed)
     elif isinstance(seed, str) and seed.strip().lstrip("+").isdigit():
         seed = int(seed)
     else:
-        raise InputError(f"`{name}` must be a non-negative integer, got {seed!r}; pass e.g. --seed 2026")
+        raise InputError(f"`{name}` must be a non-negative integer, got {seed!r}; pass e.g. `seed=2026`")
     if seed < 0:
-        raise InputError(f"`{name}` must be a non-negative integer, got {seed}; pass e.g. --seed 2026")
+        raise InputError(f"`{name}` must be a non-negative integer, got {seed}; pass e.g. `seed=2026`")
     return seed
 
 

@@ -1,6 +1,6 @@
 """Coding of column values: the exposure as t, the outcome as y, sort keys and value lists.
 
-Values are compared by their text form as well as numerically, so ``--exposed-value 2`` (text on
+Values are compared by their text form as well as numerically, so ``exposed_value=2`` (text on
 the command line) matches the integer 2 and the float 2.0 of a column with missing cells.
 """
 
@@ -17,11 +17,11 @@ def code_exposure(values: pd.Series, col, exposed_value):
     counts = counts[counts > 0]  # a categorical lists unused categories too
     uniq = list(counts.index)
     if not uniq:
-        raise InputError(f"`--exposure` column '{col}' is missing in every row; check the column name or the file")
+        raise InputError(f"`exposure` column '{col}' is missing in every row; check the column name or the file")
     if len(uniq) != 2:
         how = ("a two-group comparison needs exactly 2: recode the column to two groups or keep only the "
                "rows of two groups")
-        raise InputError(f"`--exposure` column '{col}' has {len(uniq)} value(s) ({_value_list(counts)}); {how}")
+        raise InputError(f"`exposure` column '{col}' has {len(uniq)} value(s) ({_value_list(counts)}); {how}")
     if exposed_value is None:
         if pd.api.types.is_bool_dtype(values) or set(uniq) == {True, False} and all(isinstance(u, (bool, np.bool_)) for u in uniq):
             exp = True
@@ -29,12 +29,12 @@ def code_exposure(values: pd.Series, col, exposed_value):
             exp = [u for u in uniq if float(u) == 1.0][0]
         else:
             a, b = sorted(_fmt(u) for u in uniq)
-            raise InputError(f"`--exposure` column '{col}' has two values ({a}, {b}) but neither is marked as "
-                             f"exposed; pass --exposed-value {a} or --exposed-value {b}")
+            raise InputError(f"`exposure` column '{col}' has two values ({a}, {b}) but neither is marked as "
+                             f"exposed; pass `exposed_value={a}` or `exposed_value={b}`")
     else:
         match = [u for u in uniq if _same(u, exposed_value)]
         if len(match) != 1:
-            raise InputError(f"`--exposed-value` {exposed_value!r} is not one of the two values of '{col}' "
+            raise InputError(f"`exposed_value` {exposed_value!r} is not one of the two values of '{col}' "
                              f"({_value_list(counts)}); pass one of them")
         exp = match[0]
     ref = [u for u in uniq if u is not exp and not _same(u, exp)][0]
@@ -52,22 +52,22 @@ def code_outcome(s: pd.Series, col, outcome_type, event):
     is_bool = pd.api.types.is_bool_dtype(s) or (len(uniq) > 0 and all(isinstance(u, (bool, np.bool_)) for u in uniq))
     numeric = pd.api.types.is_numeric_dtype(s) and not is_bool
     if len(uniq) < 2:
-        raise InputError(f"`--outcome` column '{col}' is constant in the analysed rows ({_value_list(counts)}); "
+        raise InputError(f"`outcome` column '{col}' is constant in the analysed rows ({_value_list(counts)}); "
                          "an outcome must vary: check the column or the missing values")
     if event is not None and outcome_type == "continuous":
-        raise InputError("`--outcome-event` applies to binary outcomes only; drop it or use --outcome-type binary")
+        raise InputError("`outcome_event` applies to binary outcomes only; drop it or use `outcome_type=binary`")
     if outcome_type == "continuous" or (outcome_type == "auto" and event is None and len(uniq) > 2):
         if not (numeric or is_bool):
-            raise InputError(f"`--outcome` column '{col}' is not numeric ({_value_list(counts)}); a continuous "
+            raise InputError(f"`outcome` column '{col}' is not numeric ({_value_list(counts)}); a continuous "
                              "outcome must be numbers, and a binary one must have exactly 2 values")
         return s.to_numpy(dtype=np.float64), "continuous", None
     if len(uniq) != 2:
-        raise InputError(f"`--outcome` column '{col}' has {len(uniq)} values ({_value_list(counts)}); a binary "
-                         "outcome needs exactly 2: recode it or use --outcome-type continuous")
+        raise InputError(f"`outcome` column '{col}' has {len(uniq)} values ({_value_list(counts)}); a binary "
+                         "outcome needs exactly 2: recode it or use `outcome_type=continuous`")
     if event is not None:
         match = [u for u in uniq if _same(u, event)]
         if len(match) != 1:
-            raise InputError(f"`--outcome-event` {event!r} is not one of the values of '{col}' "
+            raise InputError(f"`outcome_event` {event!r} is not one of the values of '{col}' "
                              f"({_value_list(counts)}); pass one of them")
         ev = match[0]
     elif is_bool:
@@ -76,9 +76,9 @@ def code_outcome(s: pd.Series, col, outcome_type, event):
         ev = [u for u in uniq if float(u) == 1.0][0]
     else:
         a, b = sorted(_fmt(u) for u in uniq)
-        alt = " or --outcome-type continuous" if numeric else ""
-        raise InputError(f"`--outcome` column '{col}' has two values ({a}, {b}); say which is the event with "
-                         f"--outcome-event {a} or --outcome-event {b}{alt}")
+        alt = " or `outcome_type=continuous`" if numeric else ""
+        raise InputError(f"`outcome` column '{col}' has two values ({a}, {b}); say which is the event with "
+                         f"`outcome_event={a}` or `outcome_event={b}`{alt}")
     other = [u for u in uniq if not _same(u, ev)][0]
     y = (s == ev).to_numpy(dtype=np.float64)
     return y, "binary", {"event": _fmt(ev), "non_event": _fmt(other)}

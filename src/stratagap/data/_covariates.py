@@ -77,12 +77,12 @@ def clean_formula(formula):
     if formula is None:
         return None
     if not isinstance(formula, str) or not formula.strip():
-        raise InputError(f"`--formula` must be a non-empty formula string, got {formula!r}")
+        raise InputError(f"`formula` must be a non-empty formula string, got {formula!r}")
     if "~" in formula:
         lhs, formula = formula.split("~", 1)
         if lhs.strip():
-            raise InputError(f"`--formula` takes only the right-hand side (e.g. 'age + I(age**2)'); "
-                             f"drop '{lhs.strip()} ~' (the outcome is --outcome)")
+            raise InputError(f"`formula` takes only the right-hand side (e.g. 'age + I(age**2)'); "
+                             f"drop '{lhs.strip()} ~' (the outcome is `outcome`)")
     return formula.strip()
 
 
@@ -100,7 +100,7 @@ def formula_variables(formula) -> list:
     try:
         terms = list(Formula(formula))
     except (FormulaicError, SyntaxError, ValueError) as err:
-        raise InputError(f"`--formula` could not be parsed ({_first_line(err)}); check its syntax") from None
+        raise InputError(f"`formula` could not be parsed ({_first_line(err)}); check its syntax") from None
     found = []
     for term in terms:
         for factor in term.factors:
@@ -119,7 +119,7 @@ def _python_names(expr: str) -> list:
     try:
         tree = ast.parse(expr, mode="eval")
     except SyntaxError:
-        raise InputError(f"`--formula` term '{expr}' is not a valid expression; check its syntax") from None
+        raise InputError(f"`formula` term '{expr}' is not a valid expression; check its syntax") from None
     skip = set()
     for node in ast.walk(tree):
         if isinstance(node, ast.Call):
@@ -153,7 +153,7 @@ def fill_missing(frame: pd.DataFrame, covariates, formula, missing):
             if formula is not None:
                 formula = f"{formula} + `{c}__missing`"
     if filled:
-        warnings.warn(f"`--missing indicator`: missing values of {', '.join(map(repr, filled))} were filled "
+        warnings.warn(f"`missing=indicator`: missing values of {', '.join(map(repr, filled))} were filled "
                       "(numeric: 0 plus a <col>__missing indicator; categorical: a '(missing)' level); this "
                       "biases estimates when the covariate is a confounder (Groenwold et al. 2012, CMAJ)",
                       MissingDataWarning, stacklevel=3)
@@ -173,11 +173,11 @@ def build(frame: pd.DataFrame, covariates, formula, t) -> Design:
                           "dropped from the design", DataWarning, stacklevel=3)
             continue
         if k == 2 and len(set(zip(pd.factorize(s)[0].tolist(), np.asarray(t).tolist()))) == 2:
-            raise InputError(f"`--covariates` column '{c}' is the exposure recoded (its two values match the groups "
+            raise InputError(f"`covariates` column '{c}' is the exposure recoded (its two values match the groups "
                              "exactly); remove it from the covariates")
         if (is_categorical(s) and not pd.api.types.is_bool_dtype(s) and n >= 3
                 and (k == n or (k > 50 and k > 0.5 * n))):
-            raise InputError(f"`--covariates` column '{c}' looks like an identifier ({k} distinct values in {n} rows); "
+            raise InputError(f"`covariates` column '{c}' looks like an identifier ({k} distinct values in {n} rows); "
                              "remove it from the covariates (or group it into a few categories)")
         why = _identifier_reason(c, s, frame.get("__row__"))
         if why:
@@ -195,7 +195,7 @@ def build(frame: pd.DataFrame, covariates, formula, t) -> Design:
     bad = ~np.isfinite(X).all(axis=0)
     if bad.any():
         j = int(np.flatnonzero(bad)[0])
-        raise InputError(f"`--formula` design column '{names[j]}' has {int((~np.isfinite(X[:, j])).sum())} "
+        raise InputError(f"`formula` design column '{names[j]}' has {int((~np.isfinite(X[:, j])).sum())} "
                          "non-finite values (e.g. log of 0); change the formula or the data")
     keep, const = independent_columns(X)
     dropped = [names[j] for j in np.flatnonzero(~keep)]
@@ -258,7 +258,7 @@ def _formula_design(frame, formula):
         with np.errstate(all="ignore"):  # non-finite results are reported below, by column
             mm = Formula(formula).get_model_matrix(frame, ensure_full_rank=True, na_action="raise")
     except (FormulaicError, SyntaxError, ValueError, TypeError, NameError) as err:
-        raise InputError(f"`--formula` could not be applied to the data ({_first_line(err)}); "
+        raise InputError(f"`formula` could not be applied to the data ({_first_line(err)}); "
                          "check the formula's terms and columns") from None
     all_names = [str(c) for c in mm.columns]
     M = np.asarray(mm.to_numpy(dtype=np.float64))

@@ -24,6 +24,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from .._base.logistic import fit_ml
 from ..errors import DataWarning, InputError, MissingDataWarning
 from ._readers import read_table
 from . import _coding
@@ -173,29 +174,29 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     if len(table) == 0:
         raise InputError("the table has no rows; check the input file or the row filter")
     if missing not in ("drop", "error", "indicator"):
-        raise InputError(f"`--missing` must be drop, error or indicator, got {missing!r}")
+        raise InputError(f"`missing` must be drop, error or indicator, got {missing!r}")
     if outcome_type not in ("auto", "binary", "continuous"):
-        raise InputError(f"`--outcome-type` must be auto, binary or continuous, got {outcome_type!r}")
+        raise InputError(f"`outcome_type` must be auto, binary or continuous, got {outcome_type!r}")
     covariates = _covariate_list(table, covariates, formula)
     formula = _design.clean_formula(formula)
-    names = {"--exposure": exposure, "--outcome": outcome, "--strata-column": strata_column,
-             "--negative-control": negative_control}
+    names = {"exposure": exposure, "outcome": outcome, "strata_column": strata_column,
+             "negative_control": negative_control}
     for arg, col in names.items():
         if col is not None:
             _need(table, col, arg)
     for col in covariates:
         if col in (exposure, outcome):
-            raise InputError(f"`--covariates` includes '{col}', which is the {'exposure' if col == exposure else 'outcome'}; remove it")
+            raise InputError(f"`covariates` includes '{col}', which is the {'exposure' if col == exposure else 'outcome'}; remove it")
     if exposure == outcome:
-        raise InputError(f"`--exposure` and `--outcome` are the same column '{exposure}'; choose two different columns")
-    for arg, col in (("--strata-column", strata_column), ("--negative-control", negative_control)):
+        raise InputError(f"`exposure` and `outcome` are the same column '{exposure}'; choose two different columns")
+    for arg, col in (("strata_column", strata_column), ("negative_control", negative_control)):
         if col is not None and col in (exposure, outcome, *covariates):
             raise InputError(f"`{arg}` '{col}' is also the exposure, outcome or a covariate; choose another column")
     if negative_control is not None and not pd.api.types.is_numeric_dtype(table[negative_control]):
-        raise InputError(f"`--negative-control` column '{negative_control}' is not numeric; "
+        raise InputError(f"`negative_control` column '{negative_control}' is not numeric; "
                          "a negative-control outcome must be numbers (0/1 for a binary one)")
-    for arg, cols in (("--exposure", [exposure]), ("--outcome", [outcome]), ("--covariates", covariates),
-                      ("--negative-control", [negative_control] if negative_control else [])):
+    for arg, cols in (("exposure", [exposure]), ("outcome", [outcome]), ("covariates", covariates),
+                      ("negative_control", [negative_control] if negative_control else [])):
         for col in cols:
             _check_column_type(table[col], col, arg)
     _warn_time_to_event(table, outcome)
@@ -214,8 +215,8 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
         bad = {c: int(miss[c].sum()) for c in covariates if miss[c].any()}
         if bad:
             listed = ", ".join(f"'{c}': {k}" for c, k in bad.items())
-            raise InputError(f"`--missing error`: covariates have missing values ({listed}); "
-                             "fill them, or use --missing drop (complete cases) or --missing indicator")
+            raise InputError(f"`missing=error`: covariates have missing values ({listed}); "
+                             "fill them, or use `missing=drop` (complete cases) or `missing=indicator`")
     drop_cols = [c for c in miss if missing != "indicator" or c not in covariates]
     dropped = np.zeros(n_read, bool)
     for c in drop_cols:
@@ -227,7 +228,7 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
         worst = sorted(by_column, key=lambda c: -by_column[c])[:3]
         listed = ", ".join(f"'{c}' ({by_column[c]} rows)" for c in worst)
         raise InputError(f"no rows are left after dropping rows with missing values; most were removed by "
-                         f"{listed}: check these columns or use --missing indicator for covariates")
+                         f"{listed}: check these columns or use `missing=indicator` for covariates")
 
     # Candidate rows: everything known except possibly the outcome (they feed the censoring model).
     cand_mask = ~np.logical_or.reduce([miss[c] for c in drop_cols if c != outcome])
@@ -253,11 +254,11 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     n1 = int(t.sum())
     if n1 == 0 or n1 == len(t):
         only = "exposed" if n1 else "reference"
-        raise InputError(f"`--exposure` '{exposure}': after dropping rows with missing values only the {only} "
+        raise InputError(f"`exposure` '{exposure}': after dropping rows with missing values only the {only} "
                          f"group ({levels[only]}) remains ({len(t)} rows); check the missing values")
     y, out_type, out_levels = _coding.code_outcome(work[outcome], outcome, outcome_type, outcome_event)
     if out_type == "binary" and len(set(zip(y.tolist(), t.tolist()))) == 2:
-        raise InputError(f"`--outcome` column '{outcome}' is the exposure recoded (its two values match "
+        raise InputError(f"`outcome` column '{outcome}' is the exposure recoded (its two values match "
                          "the groups exactly); choose the outcome column")
     design = _design.build(work, covariates, formula_used, t)
 
@@ -294,26 +295,25 @@ def observed_weights(X, t, observed) -> np.ndarray:
     ----------
     Hernán MA, Robins JM (2020). Causal Inference: What If, §12.6 (IP weighting for censoring).
     """
-    import statsmodels.api as sm
-
     observed = np.asarray(observed, bool)
     w = np.zeros(observed.shape[0])
     if observed.all():
         return w + 1.0
     Z = np.column_stack([np.ones(len(observed)), np.asarray(X, float), np.asarray(t, float)])
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("error")
-            fit = sm.GLM(observed.astype(float), Z, family=sm.families.Binomial()).fit()
-        p = fit.predict(Z)
-        if not fit.converged or np.min(p[observed]) < 1e-8:
-            raise RuntimeError("no convergence")
-    except Exception:
+    fit = fit_ml(Z, observed.astype(float))
+    # Any difficulty at all (a warning of any kind included) sends the fit to the ridge.
+    usable = (not fit.failed and not fit.problems and not fit.other_warnings
+              and np.min(fit.fitted[observed]) >= 1e-8)
+    if usable:
+        p = fit.fitted
+    else:
+        import statsmodels.api as sm
+
         warnings.warn("censoring-weight model (outcome observed ~ covariates + exposure) separated or did "
                       "not converge; a ridge-penalized fit was used", MissingDataWarning, stacklevel=2)
-        fit = sm.GLM(observed.astype(float), Z, family=sm.families.Binomial()).fit_regularized(
+        ridge = sm.GLM(observed.astype(float), Z, family=sm.families.Binomial()).fit_regularized(
             alpha=1e-3, L1_wt=0.0)
-        p = 1.0 / (1.0 + np.exp(-Z @ fit.params))
+        p = 1.0 / (1.0 + np.exp(-Z @ ridge.params))
     w[observed] = 1.0 / p[observed]  # Hernán & Robins 2020, §12.6: W^C = 1 / Pr[C = 0 | L, A]
     return w
 
@@ -324,18 +324,18 @@ def _covariate_list(table, covariates, formula) -> list:
         covariates = [c.strip() for c in covariates.split(",") if c.strip()]
     covariates = list(dict.fromkeys(covariates or []))
     for col in covariates:
-        _need(table, col, "--covariates")
+        _need(table, col, "covariates")
     if formula is None:
         if not covariates:
-            raise InputError("`--covariates` is empty; name at least one covariate column or give --formula")
+            raise InputError("`covariates` is empty; name at least one covariate column or give `formula`")
         return covariates
     variables = _design.formula_variables(formula)
     for var in variables:
-        _need(table, var, "--formula")
+        _need(table, var, "formula")
     unused = [c for c in covariates if c not in variables]
     if unused:
-        raise InputError(f"`--covariates` names {', '.join(map(repr, unused))}, which the --formula does not use; "
-                         "add them to the formula or remove them from --covariates")
+        raise InputError(f"`covariates` names {', '.join(map(repr, unused))}, which the `formula` does not use; "
+                         "add them to the formula or remove them from `covariates`")
     return covariates + [v for v in variables if v not in covariates]
 
 
@@ -349,7 +349,7 @@ def _need(table, col, arg) -> None:
 
 def _check_column_type(s: pd.Series, col, arg) -> None:
     if pd.api.types.is_datetime64_any_dtype(s) or isinstance(s.dtype, pd.PeriodDtype):
-        what = "time-to-event outcomes are out of scope" if arg == "--outcome" else "convert it to a number (e.g. age or year)"
+        what = "time-to-event outcomes are out of scope" if arg == "outcome" else "convert it to a number (e.g. age or year)"
         raise InputError(f"`{arg}` column '{col}' holds dates/times; {what}")
     if pd.api.types.is_float_dtype(s):
         k = int(np.isinf(s.to_numpy(dtype=float, na_value=np.nan)).sum())
@@ -371,7 +371,7 @@ def _warn_time_to_event(table, outcome) -> None:
         dateish |= bool(((s // 100 % 100).between(1, 12) & (s % 100).between(1, 31)).all())
     if ((out & _DURATIONS and any(o & _FLAGS for o in others))
             or (out & _FLAGS and any(o & _DURATIONS for o in others)) or dateish):
-        warnings.warn(f"`--outcome` '{outcome}' looks like part of a time-to-event outcome (a date, or a "
+        warnings.warn(f"`outcome` '{outcome}' looks like part of a time-to-event outcome (a date, or a "
                       "duration with a censoring flag); time-to-event outcomes are out of scope: censoring "
                       "is not handled", DataWarning, stacklevel=3)
 

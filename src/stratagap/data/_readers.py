@@ -144,12 +144,12 @@ def _decode(p: Path, raw: bytes, encoding: str | None) -> str:
     try:
         return raw.decode(enc)
     except LookupError:
-        raise InputError(f"`--encoding` '{encoding}' is not a known text encoding; "
+        raise InputError(f"`encoding` '{encoding}' is not a known text encoding; "
                          "use e.g. utf-8, latin-1 or cp1252") from None
     except UnicodeDecodeError as err:
         raise InputError(
             f"input file '{p}' cannot be decoded as {encoding or 'UTF-8'} (byte 0x{raw[err.start]:02x} "
-            f"at position {err.start}); re-save it as UTF-8 or pass --encoding (e.g. --encoding latin-1)"
+            f"at position {err.start}); re-save it as UTF-8 or pass `encoding` (e.g. `encoding=latin-1`)"
         ) from None
 
 
@@ -287,9 +287,9 @@ def _read_xport(p: Path, encoding: str | None) -> pd.DataFrame:
         table = pd.read_sas(p, format="xport", encoding=encoding or "utf-8")
     except UnicodeDecodeError:
         raise InputError(f"input file '{p}' has text that is not {encoding or 'UTF-8'}; "
-                         "pass --encoding (e.g. --encoding latin-1)") from None
+                         "pass `encoding` (e.g. `encoding=latin-1`)") from None
     except LookupError:
-        raise InputError(f"`--encoding` '{encoding}' is not a known text encoding; "
+        raise InputError(f"`encoding` '{encoding}' is not a known text encoding; "
                          "use e.g. utf-8 or latin-1") from None
     except Exception as err:
         raise InputError(f"input file '{p}' could not be read as SAS transport ({_first_line(err)}); "

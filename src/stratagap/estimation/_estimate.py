@@ -13,6 +13,7 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
+from .._base.checks import check_alpha
 from ..errors import InputError
 from .._base.layout import layout_for
 from .._base.jsonable import jsonable
@@ -66,12 +67,7 @@ class StratifiedEstimate(Estimate):
 
 
 # --------------------------------------------------------------------------- input checks
-def _check_alpha(alpha) -> float:
-    if isinstance(alpha, (bool, np.bool_)) or not isinstance(alpha, (int, float, np.floating)) \
-            or not 0 < float(alpha) < 1:
-        raise InputError(f"`alpha` must be a number strictly between 0 and 1, got {alpha!r}; "
-                         "use e.g. --alpha 0.05")
-    return float(alpha)
+_check_alpha = check_alpha  # the "interval" variant: (0, 1)
 
 
 def _check_estimand(estimand) -> str:

@@ -26,13 +26,9 @@ from __future__ import annotations
 import warnings
 
 import numpy as np
-import statsmodels.api as sm
-from statsmodels.tools.sm_exceptions import (
-    ConvergenceWarning,
-    PerfectSeparationError,
-    PerfectSeparationWarning,
-)
 
+from .._base.linalg import ordered_independent_columns as full_rank_columns
+from .._base.logistic import fit_ml
 from ..errors import ModelWarning, SeparationWarning, WeightWarning
 
 #: A single unit carrying more than this share of its group's total weight is flagged
@@ -40,44 +36,20 @@ from ..errors import ModelWarning, SeparationWarning, WeightWarning
 MAX_SHARE_FLAG = 0.10
 
 
-def full_rank_columns(Z: np.ndarray, tol: float = 1e-9) -> np.ndarray:
-    """Indices of the columns of ``Z`` that are not linear combinations of earlier ones.
-
-    Unpivoted QR: ``|R_jj|`` is the norm of column ``j`` after projecting out the columns before
-    it, so the intercept (column 0) and the first of any dependent set are kept, in order.
-    """
-    if Z.shape[1] == 0:
-        return np.arange(0)
-    r = np.linalg.qr(Z, mode="r")
-    norms = np.linalg.norm(Z, axis=0)
-    diag = np.zeros(Z.shape[1])  # a wide Z: columns beyond the number of rows are dependent
-    k = min(Z.shape)
-    diag[:k] = np.abs(np.diag(r))[:k]
-    return np.flatnonzero(diag > tol * np.maximum(norms, 1e-300))
-
-
 def fit_logistic(Z: np.ndarray, t: np.ndarray, what: str) -> tuple[np.ndarray, np.ndarray, bool]:
     """Maximum-likelihood logistic regression of ``t`` on ``Z`` (Z includes the intercept).
 
     Returns ``(beta, fitted, ok)``; ``ok`` is False when the fit separated or did not converge,
     in which case a :class:`~stratagap.errors.SeparationWarning` has been issued naming ``what``.
+    No fallback: the sandwich stacks the score equations that were actually solved.
     """
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        try:
-            res = sm.GLM(t, Z, family=sm.families.Binomial()).fit(maxiter=100)
-        except (PerfectSeparationError, np.linalg.LinAlgError, ValueError) as exc:
-            warnings.warn(
-                f"{what}: the logistic fit failed ({type(exc).__name__}); "
-                "estimates that need it are omitted",
-                SeparationWarning,
-                stacklevel=3,
-            )
-            return np.full(Z.shape[1], np.nan), np.full(Z.shape[0], np.nan), False
-    bad = [w for w in caught if issubclass(w.category, (PerfectSeparationWarning, ConvergenceWarning))]
-    fitted = np.asarray(res.fittedvalues, dtype=float)
-    ok = not bad and bool(getattr(res, "converged", True))
-    ok = ok and bool(np.all((fitted > 1e-12) & (fitted < 1 - 1e-12)))
+    fit = fit_ml(Z, t)
+    if fit.failed:
+        warnings.warn(f"{what}: {fit.problems[0]}; estimates that need it are omitted",
+                      SeparationWarning, stacklevel=3)
+        return np.full(Z.shape[1], np.nan), np.full(Z.shape[0], np.nan), False
+    ok = not fit.statsmodels_warned and fit.converged
+    ok = ok and bool(np.all((fit.fitted > 1e-12) & (fit.fitted < 1 - 1e-12)))
     if not ok:
         warnings.warn(
             f"{what}: the logistic fit separated or did not converge (fitted values at 0 or 1); "
@@ -85,7 +57,7 @@ def fit_logistic(Z: np.ndarray, t: np.ndarray, what: str) -> tuple[np.ndarray, n
             SeparationWarning,
             stacklevel=3,
         )
-    return np.asarray(res.params, dtype=float), fitted, ok
+    return fit.params, fit.fitted, ok
 
 
 def sandwich(psi: np.ndarray, A: np.ndarray) -> np.ndarray:

@@ -34,38 +34,7 @@ from __future__ import annotations
 
 import numpy as np
 
-#: A unit whose leverage is at least 1 - LEVERAGE_TOL has an undefined HC2 weight.
-LEVERAGE_TOL = 1e-10
-#: A column whose component orthogonal to the earlier columns has relative norm below this is
-#: treated as a linear combination of them.
-COLLINEAR_TOL = 1e-9
-
-
-def hc2_ols(D: np.ndarray, y: np.ndarray):
-    """OLS of ``y`` on ``D`` with the HC2 covariance, or ``(None, reason)`` if not estimable.
-
-    Returns ``(beta, cov, None)`` on success. HC2: ``(D'D)^-1 D' diag(e_i^2 / (1 - h_ii)) D
-    (D'D)^-1`` (MacKinnon & White 1985), computed from the thin QR ``D = QR``:
-    ``h_ii = ||Q_i||^2`` and ``(D'D)^-1 D' = R^-1 Q'``.
-    """
-    n, k = D.shape
-    if n <= k:
-        return None, None, f"{n} units for {k} coefficients"
-    Q, R = np.linalg.qr(D)
-    norms = np.linalg.norm(D, axis=0)
-    diag = np.abs(np.diag(R))
-    if np.any(diag <= COLLINEAR_TOL * np.where(norms > 0, norms, 1.0)):
-        return None, None, "design rank deficient"
-    h = np.einsum("ij,ij->i", Q, Q)  # leverages
-    if h.max() >= 1.0 - LEVERAGE_TOL:
-        return None, None, f"leverage reaches 1 for {int(np.sum(h >= 1.0 - LEVERAGE_TOL))} unit(s)"
-    Rinv = np.linalg.inv(R)  # k x k, upper triangular and well conditioned (scaled columns)
-    beta = Rinv @ (Q.T @ y)
-    e = y - D @ beta
-    u = e * e / (1.0 - h)  # MacKinnon & White 1985: HC2 weights
-    meat = (Q * u[:, None]).T @ Q
-    cov = Rinv @ meat @ Rinv.T
-    return beta, cov, None
+from .._base.linalg import COLLINEAR_TOL, LEVERAGE_TOL, hc2_ols, ordered_dependent_share
 
 
 def _screen_columns(Xc: np.ndarray, t: np.ndarray, names):
@@ -91,10 +60,7 @@ def _screen_columns(Xc: np.ndarray, t: np.ndarray, names):
     if Z.shape[1]:
         Z = Z / Z.std(axis=0)
         D = np.column_stack([np.ones(n), t, Z])
-        R = np.linalg.qr(D, mode="r")
-        diag = np.zeros(D.shape[1])  # with fewer units than columns the rest are dependent
-        diag[:min(D.shape)] = np.abs(np.diag(R))
-        rel = diag[2:] / np.linalg.norm(Z, axis=0)
+        rel = ordered_dependent_share(D)[2:]
         dependent = rel <= COLLINEAR_TOL
         if dependent.any():
             notes.append("linear combination of other columns (or of the exposure): "

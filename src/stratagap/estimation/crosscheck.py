@@ -47,6 +47,7 @@ import numpy as np
 from scipy import stats
 
 from ._aipw import aipw_fit, standardize_fit
+from .._base.checks import check_alpha
 from ..errors import InputError
 from ._ipw import MAX_SHARE_FLAG, _weight_parts, fit_score, flag_weights, ipw_fit, weight_summary
 from .._base.jsonable import jsonable
@@ -218,8 +219,7 @@ def _check_inputs(y, t, X, estimand, alpha, outcome_type, measure, truncate=None
         raise InputError(f"`measure` must be one of {_MEASURES}, got {measure!r}")
     if measure != "difference" and outcome_type != "binary":
         raise InputError(f"`measure`={measure!r} needs a binary outcome; use measure='difference' for a continuous one")
-    if isinstance(alpha, bool) or not isinstance(alpha, (int, float, np.floating)) or not 0 < alpha < 1:
-        raise InputError(f"`alpha` must be a number strictly between 0 and 1, got {alpha!r}; e.g. 0.05")
+    alpha = check_alpha(alpha)
     if truncate is not None:
         try:
             lo, hi = (float(v) for v in truncate)

@@ -61,7 +61,7 @@ def _check_choice(value, allowed, name):
 def _check_resamples(resamples):
     if isinstance(resamples, (bool, np.bool_)) or not isinstance(resamples, (int, np.integer)) \
             or not 1 <= int(resamples) <= MAX_RESAMPLES:
-        raise InputError(f"`--resamples` must be an integer from 1 to {MAX_RESAMPLES:,}, got "
+        raise InputError(f"`resamples` must be an integer from 1 to {MAX_RESAMPLES:,}, got "
                          f"{resamples!r}; 10000 is a good default")
     return int(resamples)
 

@@ -299,7 +299,7 @@ def stratified_test(values, t, labels, *, estimand, statistic="mean_difference",
     See the module docstring.
     """
     _check_choice(statistic, STATISTICS, "statistic")
-    _check_choice(alternative, ALTERNATIVES, "--alternative")
+    _check_choice(alternative, ALTERNATIVES, "alternative")
     _check_choice(engine, ENGINES, "engine")
     resamples = _check_resamples(resamples)
     seed = check_seed(seed)

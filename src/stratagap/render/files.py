@@ -39,22 +39,22 @@ def prepare_folder(out: str | Path, *, inputs=(), overwrite: bool = False,
             continue
         inp = Path(item).expanduser().resolve()
         if resolved == inp or inp in resolved.parents:
-            raise InputError(f"`--out` {str(out)!r} is the input file or lies inside it; "
+            raise InputError(f"`out` {str(out)!r} is the input file or lies inside it; "
                              "choose a separate folder")
         if inp.parent == resolved and inp.name in OUTPUT_NAMES or resolved / "figures" in inp.parents:
-            raise InputError(f"`--out` {str(out)!r} would overwrite the input file {inp.name!r}; "
+            raise InputError(f"`out` {str(out)!r} would overwrite the input file {inp.name!r}; "
                              "choose another folder")
     if resolved.exists() and not resolved.is_dir():
-        raise InputError(f"`--out` {str(out)!r} exists and is not a folder; choose a folder path")
+        raise InputError(f"`out` {str(out)!r} exists and is not a folder; choose a folder path")
     if resolved.is_dir() and any(resolved.iterdir()):
         ours = demo and (resolved / DEMO_MARKER).is_file()
         if not (overwrite or ours):
-            raise InputError(f"`--out` folder {str(out)!r} is not empty; choose a new folder or "
-                             "pass --overwrite to replace its files")
+            raise InputError(f"`out` folder {str(out)!r} is not empty; choose a new folder or "
+                             "pass `overwrite` to replace its files")
     try:
         resolved.mkdir(parents=True, exist_ok=True)
     except OSError as exc:
-        raise InputError(f"`--out` folder {str(out)!r} cannot be created ({exc.strerror}); "
+        raise InputError(f"`out` folder {str(out)!r} cannot be created ({exc.strerror}); "
                          "choose a writable location") from None
     if demo:
         write_atomic(resolved / DEMO_MARKER, "written by `stratagap demo`; the demo may replace "

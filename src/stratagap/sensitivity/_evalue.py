@@ -14,6 +14,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from scipy import stats
 
+from .._base.checks import check_alpha
 from ..errors import InputError, ModelWarning
 from .._base.jsonable import jsonable as _jsonable
 
@@ -106,9 +107,7 @@ def _e_value_iv(estimate, ci_low, ci_high, measure, outcome_sd, se, alpha, basel
     if not ci_low <= estimate <= ci_high:
         raise InputError(f"`ci_low` <= `estimate` <= `ci_high` is required, got {ci_low} <= {estimate} <= "
                          f"{ci_high}; pass the interval limits in order")
-    alpha = _finite("alpha", alpha)
-    if not 0.0 < alpha < 1.0:
-        raise InputError(f"`alpha` must be in (0, 1), got {alpha}; use e.g. 0.05 for a 95 % interval")
+    alpha = check_alpha(alpha)
     if measure in ("rr", "or") and ci_low <= 0.0:
         raise InputError(f"`estimate` and its interval must be positive for measure {measure!r}, "
                          f"got ci_low={ci_low}; pass the ratio itself, not its logarithm")

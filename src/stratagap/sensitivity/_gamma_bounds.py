@@ -29,6 +29,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import optimize
 
+from .._base.checks import check_alpha
 from ..errors import InputError
 from .._base.jsonable import jsonable as _jsonable
 from .._base.layout import layout_for
@@ -271,7 +272,7 @@ def _check_gammas(gammas):
     g = np.asarray(gammas, dtype=float).ravel()
     if g.size == 0 or not np.isfinite(g).all() or (g < 1.0).any():
         raise InputError(f"`gammas` must be finite values >= 1, got {list(np.asarray(gammas).ravel())[:5]}; "
-                         "pass e.g. --gamma-grid 1,1.5,2,3")
+                         "pass e.g. `gamma_grid=1,1.5,2,3`")
     return sorted(set(g.tolist()))
 
 
@@ -367,13 +368,11 @@ def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_diff
     ----------
     Rosenbaum PR (2002). Observational Studies, 2nd ed., ch. 4. Springer.
     """
+    alpha = check_alpha(alpha)
     try:
-        alpha = float(alpha)
         cap = float(cap)
     except (TypeError, ValueError):
-        raise InputError(f"`alpha` and `cap` must be numbers, got {alpha!r}, {cap!r}") from None
-    if not 0.0 < alpha < 1.0:
-        raise InputError(f"`alpha` must be in (0, 1), got {alpha}; use e.g. --alpha 0.05")
+        raise InputError(f"`cap` must be a number, got {cap!r}") from None
     if not (math.isfinite(cap) and cap > 1.0):
         raise InputError(f"`cap` must be a finite number > 1, got {cap}")
     level = alpha / 2.0 if two_sided else alpha

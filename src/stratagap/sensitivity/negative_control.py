@@ -64,7 +64,7 @@ def negative_control_check(values, t, X, labels, *, column: str, names, estimand
     """
     ok = np.isfinite(values)
     if ok.sum() < 4:
-        raise InputError(f"`--negative-control` column {column!r} has fewer than 4 "
+        raise InputError(f"`negative_control` column {column!r} has fewer than 4 "
                          "non-missing values among analysed rows; choose another column")
     lab = labels[ok]
     residuals = residualize(values[ok], X[ok], lab)

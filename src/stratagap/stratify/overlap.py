@@ -137,9 +137,9 @@ def apply_overlap(score, t, *, estimand, rule="auto") -> OverlapResult:
     score, t = check_score(score, t)
     estimand = str(estimand).lower()
     if estimand not in ("ate", "att"):
-        raise InputError(f"`--estimand` must be 'ate' or 'att', got {estimand!r}")
+        raise InputError(f"`estimand` must be 'ate' or 'att', got {estimand!r}")
     if rule not in RULES:
-        raise InputError(f"`--trim` must be one of {', '.join(RULES)}, got {rule!r}")
+        raise InputError(f"`trim` must be one of {', '.join(RULES)}, got {rule!r}")
     e1, e0 = score[t == 1], score[t == 0]
     if e1.size < 2 or e0.size < 2:
         raise InputError(f"need at least 2 units of each group, got {e1.size} exposed and "
@@ -170,7 +170,7 @@ def apply_overlap(score, t, *, estimand, rule="auto") -> OverlapResult:
             warnings.warn(
                 f"{out1} of {e1.size} exposed units have scores outside the comparison range "
                 f"[{min0:.4g}, {max0:.4g}]; they are kept, so their comparisons rest on "
-                "extrapolation; --trim common would set them aside (and relabel the estimand)",
+                "extrapolation; `trim=common` would set them aside (and relabel the estimand)",
                 OverlapWarning, stacklevel=2)
     elif rule in ("auto", "none"):
         keep = np.ones(score.size, dtype=bool)
@@ -185,16 +185,16 @@ def apply_overlap(score, t, *, estimand, rule="auto") -> OverlapResult:
             f"poor overlap of propensity scores: {out1} of {e1.size} exposed and {out0} of "
             f"{e0.size} reference units lie outside the other group's range, and "
             f"{share_common:.0%} of units lie in the common support [{lo:.4g}, {hi:.4g}]; "
-            "estimates there rest on extrapolation: consider --trim crump or --trim common",
+            "estimates there rest on extrapolation: consider `trim=crump` or `trim=common`",
             OverlapWarning, stacklevel=2)
 
     n1_kept, n0_kept = int(np.sum(keep & exposed)), int(np.sum(keep & ~exposed))
     set_aside = {"exposed": int(e1.size - n1_kept), "reference": int(e0.size - n0_kept)}
     if n1_kept < 2 or n0_kept < 2:
         raise InputError(
-            f"overlap rule `--trim {rule}` leaves {n1_kept} exposed and {n0_kept} reference "
+            f"overlap rule `trim={rule}` leaves {n1_kept} exposed and {n0_kept} reference "
             "units; at least 2 of each are needed: check the covariates for one that determines "
-            "exposure, or use a different --trim rule")
+            "exposure, or use a different `trim` rule")
     if estimand == "ate" and (set_aside["exposed"] or set_aside["reference"]):
         label = ("ATE in the common-support population" if rule == "common"
                  else "ATE in the overlap population [0.1, 0.9]")
@@ -202,7 +202,7 @@ def apply_overlap(score, t, *, estimand, rule="auto") -> OverlapResult:
         label = ATT_TRIMMED_LABEL
     if label != estimand.upper():
         warnings.warn(
-            f"trimming by `--trim {rule}` set aside {set_aside['exposed']} exposed and "
+            f"trimming by `trim={rule}` set aside {set_aside['exposed']} exposed and "
             f"{set_aside['reference']} reference units; the estimate now refers to: {label}",
             EstimandWarning, stacklevel=2)
     description = f"rule {rule} for the {estimand.upper()}: {what}; estimand: {label}"

@@ -14,10 +14,11 @@ import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import linalg
 from scipy.special import expit
 
 from ..errors import InputError, ModelWarning, SeparationWarning
+from .._base.linalg import pivoted_independent_columns
+from .._base.logistic import firth, fit_ml
 from .._base.rng import check_seed, substream
 
 __all__ = ["PropensityFit", "fit_propensity", "check_score"]
@@ -201,26 +202,14 @@ def _logit_of(score):
 
 
 # ----------------------------------------------------------------------------- logistic
-def _independent_columns(Z):
-    """Indices of a maximal set of linearly independent columns (pivoted QR), in order."""
-    if Z.shape[1] == 0:
-        return np.arange(0)
-    _, R, piv = linalg.qr(Z, mode="economic", pivoting=True)
-    d = np.abs(np.diag(R))
-    tol = max(Z.shape) * np.finfo(float).eps * (d[0] if d.size else 0.0)
-    rank = int(np.sum(d > max(tol, 1e-9 * np.sqrt(Z.shape[0]))))
-    return np.sort(piv[:rank])
-
-
 def _fit_logistic(X, t, names, seed):
     import statsmodels.api as sm
-    from statsmodels.tools import sm_exceptions as sme
 
     notes = []
     mu = X.mean(axis=0)
     sd = X.std(axis=0)
     Zs = (X - mu) / np.where(sd > 0, sd, 1.0)  # constant columns become 0 and drop out below
-    keep = _independent_columns(Zs)
+    keep = pivoted_independent_columns(Zs)
     dropped = [names[j] for j in range(X.shape[1]) if j not in set(keep.tolist())]
     if dropped:
         msg = (f"score model: column(s) {', '.join(dropped)} are constant or linear combinations "
@@ -230,40 +219,23 @@ def _fit_logistic(X, t, names, seed):
     Xk, sdk, muk = X[:, keep], sd[keep], mu[keep]
     kept_names = [names[j] for j in keep]
 
-    problems = []
-    res = None
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        try:
-            res = sm.GLM(t.astype(float), sm.add_constant(Xk, has_constant="add"),
-                         family=sm.families.Binomial()).fit()
-        except (sme.PerfectSeparationError, np.linalg.LinAlgError, ValueError) as exc:
-            problems.append(f"the maximum-likelihood fit failed ({type(exc).__name__})")
-        big_coef = np.zeros(len(keep), dtype=bool)
-        if res is not None:  # inside the block: bse and fitted values are computed lazily
-            params, bse = np.asarray(res.params), np.asarray(res.bse)
-            if not getattr(res, "converged", True):
-                problems.append("the fit did not converge")
-            if not np.all(np.isfinite(params)):
-                problems.append("coefficients are not finite")
-            p = np.asarray(res.fittedvalues)
-            near = int(np.sum((p < NEAR_BOUNDARY) | (p > 1 - NEAR_BOUNDARY)))
-            std_coef = np.abs(params[1:] * sdk)
-            std_se = np.abs(bse[1:] * sdk)
-            big_coef = (~np.isfinite(std_coef) | (std_coef > HUGE_STD_COEF)
-                        | ~np.isfinite(std_se) | (std_se > HUGE_STD_SE))
-            if near and big_coef.any():
-                problems.append(f"{near} fitted probabilities within {NEAR_BOUNDARY:g} of 0 or 1 "
-                                "with diverging coefficients")
-    for w in caught:
-        if issubclass(w.category, sme.PerfectSeparationWarning):
-            problems.append("statsmodels reported perfect separation")
-        elif issubclass(w.category, sme.ConvergenceWarning):
-            problems.append("statsmodels reported non-convergence")
+    fit = fit_ml(sm.add_constant(Xk, has_constant="add"), t.astype(float))
+    problems = list(fit.problems)
+    big_coef = np.zeros(len(keep), dtype=bool)
+    if not fit.failed:
+        params, bse, p = fit.params, fit.bse, fit.fitted
+        near = int(np.sum((p < NEAR_BOUNDARY) | (p > 1 - NEAR_BOUNDARY)))
+        std_coef = np.abs(params[1:] * sdk)
+        std_se = np.abs(bse[1:] * sdk)
+        big_coef = (~np.isfinite(std_coef) | (std_coef > HUGE_STD_COEF)
+                    | ~np.isfinite(std_se) | (std_se > HUGE_STD_SE))
+        if near and big_coef.any():
+            problems.append(f"{near} fitted probabilities within {NEAR_BOUNDARY:g} of 0 or 1 "
+                            "with diverging coefficients")
 
     if not problems:
-        score = np.asarray(res.fittedvalues, dtype=float)
-        coefs = _coef_dict(names, keep, [float(res.params[0])] + list(res.params[1:]), None)
+        score = np.asarray(fit.fitted, dtype=float)
+        coefs = _coef_dict(names, keep, [float(fit.params[0])] + list(fit.params[1:]), None)
         return PropensityFit(score=score, logit=_logit_of(score), auc=_auc(t, score),
                              method="logistic", penalized=False, separation_terms=[],
                              converged=True, coefficients=coefs, seed=seed,
@@ -274,7 +246,7 @@ def _fit_logistic(X, t, names, seed):
     if not terms:  # no single covariate separates: name those whose coefficients diverged
         terms = [kept_names[j] for j in np.flatnonzero(big_coef)]
     Z = np.column_stack([np.ones(len(t)), Zs[:, keep]])
-    b, ok = _firth(Z, t.astype(float))
+    b, ok = firth(Z, t.astype(float))
     penalty = "firth"
     if not ok:
         from sklearn.linear_model import LogisticRegression
@@ -317,48 +289,6 @@ def _separating_columns(X, t, names):
         if x0[:, j].max() <= x1[:, j].min() or x1[:, j].max() <= x0[:, j].min():
             out.append(name)
     return out
-
-
-def _firth(Z, y, maxiter=200, tol=1e-8):
-    """Firth's penalized logistic regression by modified-score Newton steps with step halving.
-
-    Maximizes l(b) + 0.5 log det I(b) (Firth 1993, eq. 2); the modified score is
-    U*(b) = Z'(y - p + h (1/2 - p)) with h the hat-matrix diagonal (Heinze & Schemper 2002, eq. 2).
-    """
-    def penalized_ll(b):
-        eta = Z @ b
-        p = expit(eta)
-        info = Z.T @ (Z * (p * (1 - p))[:, None])
-        sign, logdet = np.linalg.slogdet(info)
-        if sign <= 0:
-            return -np.inf
-        return float(np.sum(y * eta - np.logaddexp(0.0, eta)) + 0.5 * logdet)  # Firth 1993, eq. 2
-
-    b = np.zeros(Z.shape[1])
-    current = penalized_ll(b)
-    for _ in range(maxiter):
-        p = expit(Z @ b)
-        w = p * (1 - p)
-        info = Z.T @ (Z * w[:, None])
-        try:
-            info_inv = np.linalg.inv(info)
-        except np.linalg.LinAlgError:
-            return b, False
-        h = w * np.einsum("ij,jk,ik->i", Z, info_inv, Z)  # hat diagonal of W^1/2 Z I^-1 Z' W^1/2
-        step = info_inv @ (Z.T @ (y - p + h * (0.5 - p)))  # Heinze & Schemper 2002, eq. 2
-        biggest = np.max(np.abs(step))
-        if biggest > 5.0:
-            step *= 5.0 / biggest
-        for _ in range(40):
-            trial = penalized_ll(b + step)
-            if trial >= current - 1e-12:
-                break
-            step /= 2.0
-        b = b + step
-        current = penalized_ll(b)
-        if np.max(np.abs(step)) < tol:
-            return b, bool(np.isfinite(current))
-    return b, False
 
 
 # ----------------------------------------------------------------------------- boosting

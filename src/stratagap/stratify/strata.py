@@ -144,7 +144,7 @@ def make_strata(score, t, *, estimand, n_strata=5, method="quantile", min_per_gr
     score, t = check_score(score, t, probabilities=False)
     estimand = str(estimand).lower()
     if estimand not in ("ate", "att"):
-        raise InputError(f"`--estimand` must be 'ate' or 'att', got {estimand!r}")
+        raise InputError(f"`estimand` must be 'ate' or 'att', got {estimand!r}")
     min_per_group = _check_int(min_per_group, "min_per_group", 1)
     if user_labels is not None:
         return _user_strata(score, t, estimand, user_labels)
@@ -155,17 +155,17 @@ def make_strata(score, t, *, estimand, n_strata=5, method="quantile", min_per_gr
     if min(n1, n0) < min_per_group:
         raise InputError(f"only {n1} exposed and {n0} reference units to stratify; each stratum "
                          f"needs min_per_group={min_per_group} of each group: lower "
-                         "--min-per-group or revisit the overlap rule")
+                         "`min_per_group` or revisit the overlap rule")
     if method == "adaptive":
         return _adaptive(score, t, estimand, logit, float(t_max), min_per_group,
                          _check_int(min_block, "min_block", 1))
-    n_strata = _check_int(n_strata, "--strata", 1)
+    n_strata = _check_int(n_strata, "n_strata", 1)
     supported = max(1, min(n // (2 * min_per_group), min(n1, n0) // 2))
     if n_strata > supported:
         raise InputError(
-            f"`--strata {n_strata}` is more than the data support: {n1} exposed and {n0} "
+            f"`n_strata={n_strata}` is more than the data support: {n1} exposed and {n0} "
             f"reference units allow at most {supported} strata (at least {min_per_group} units "
-            f"of each group per stratum, 2 at the very least); use --strata {supported} or fewer")
+            f"of each group per stratum, 2 at the very least); use `n_strata={supported}` or fewer")
     return _quantile(score, t, estimand, n_strata, min_per_group)
 
 
@@ -298,14 +298,14 @@ def _median_split(idx, score, t, min_per_group, min_block):
 def _user_strata(score, t, estimand, user_labels):
     given = np.asarray(user_labels)
     if given.shape != t.shape:
-        raise InputError(f"`--strata-column` has {given.size} values for {t.size} units")
+        raise InputError(f"`strata_column` has {given.size} values for {t.size} units")
     values, inv = np.unique(given, return_inverse=True)
     S0 = values.size
     n1 = np.bincount(inv, weights=t, minlength=S0).astype(int)
     n0 = np.bincount(inv, minlength=S0) - n1
     usable = (n1 > 0) & (n0 > 0)
     if not usable.any():
-        raise InputError(f"`--strata-column`: none of the {S0} given strata holds both exposed "
+        raise InputError(f"`strata_column`: none of the {S0} given strata holds both exposed "
                          "and reference units; check the column (it should group comparable "
                          "units of both groups)")
     new = np.full(S0, -1, dtype=np.int64)
@@ -351,7 +351,7 @@ def _checked_layout(labels, t, estimand):
         raise InputError("no unit is in a stratum (all labels are -1)")
     est = str(estimand).lower()
     if est not in ESTIMANDS:
-        raise InputError(f"`--estimand` must be 'ate' or 'att', got {estimand!r}")
+        raise InputError(f"`estimand` must be 'ate' or 'att', got {estimand!r}")
     return ok, StratumLayout.build(labels[ok], t[ok], est)
 
 
