@@ -197,9 +197,9 @@ def test_damaged_parquet(tmp_path, capsys):
 
 # ------------------------------------------------------------------------ columns (API)
 def test_column_not_in_table_suggests_close_match(frame):
-    input_error(frame, r"--outcome.*'yy'.*did you mean 'y'", outcome="yy")
-    input_error(frame, r"--covariates.*'bmii'.*did you mean 'bmi'", covariates=["age", "bmii"])
-    input_error(frame, r"--exposure.*'group'.*did you mean 'grp'", exposure="group")
+    input_error(frame, r"outcome.*'yy'.*did you mean 'y'", outcome="yy")
+    input_error(frame, r"covariates.*'bmii'.*did you mean 'bmi'", covariates=["age", "bmii"])
+    input_error(frame, r"exposure.*'group'.*did you mean 'grp'", exposure="group")
 
 
 def test_column_not_in_table_on_the_cli(csv, capsys):
@@ -209,52 +209,52 @@ def test_column_not_in_table_on_the_cli(csv, capsys):
 
 
 def test_exposure_with_one_value(frame):
-    input_error(frame.assign(grp="night"), r"--exposure.*'grp'.*1 value")
+    input_error(frame.assign(grp="night"), r"exposure.*'grp'.*1 value")
 
 
 def test_exposure_with_three_values(frame):
     three = frame.assign(grp=np.where(frame.index % 3 == 0, "rotating", frame["grp"]))
-    msg = input_error(three, r"--exposure.*'grp'.*3 value")
+    msg = input_error(three, r"exposure.*'grp'.*3 value")
     assert "rotating" in msg and "night" in msg and "day" in msg  # lists the values
 
 
 def test_exposure_two_text_values_without_exposed_value(frame):
-    input_error(frame, r"--exposed-value night|--exposed-value day", exposed_value=None)
+    input_error(frame, r"exposed_value=night|exposed_value=day", exposed_value=None)
 
 
 def test_exposed_value_not_in_column(frame):
-    input_error(frame, r"--exposed-value.*'evening'.*not one of", exposed_value="evening")
+    input_error(frame, r"exposed_value.*'evening'.*not one of", exposed_value="evening")
 
 
 def test_exposure_one_group_after_dropping_missing(frame):
     # every reference (day) row misses bmi: complete cases leave only the night group
     holes = frame.assign(bmi=frame["bmi"].where(frame["grp"] == "night"))
-    input_error(holes, r"--exposure.*'grp'.*only the exposed group")
+    input_error(holes, r"exposure.*'grp'.*only the exposed group")
 
 
 def test_outcome_non_numeric(frame):
     text = frame.assign(y=np.where(frame.index % 3 == 0, "high", np.where(frame.index % 3 == 1,
                                                                            "low", "mid")))
-    input_error(text, r"--outcome.*'y'.*not numeric|--outcome.*'y'.*3 values")
+    input_error(text, r"outcome.*'y'.*not numeric|outcome.*'y'.*3 values")
 
 
 def test_outcome_constant(frame):
-    input_error(frame.assign(y=5.0), r"--outcome.*'y'.*constant")
+    input_error(frame.assign(y=5.0), r"outcome.*'y'.*constant")
 
 
 def test_outcome_two_text_values_needs_event(frame):
     yes_no = frame.assign(y=np.where(frame["event"] == 1, "yes", "no"))
-    input_error(yes_no, r"--outcome-event no or --outcome-event yes")
+    input_error(yes_no, r"`outcome_event=no` or `outcome_event=yes`")
 
 
 def test_outcome_with_inf(frame):
     bad = frame.assign(y=frame["y"].where(frame.index != 7, np.inf))
-    input_error(bad, r"--outcome.*'y'.*infinite")
+    input_error(bad, r"outcome.*'y'.*infinite")
 
 
 def test_covariate_with_inf(frame):
     bad = frame.assign(bmi=frame["bmi"].where(frame.index != 3, -np.inf))
-    input_error(bad, r"--covariates.*'bmi'.*infinite")
+    input_error(bad, r"covariates.*'bmi'.*infinite")
 
 
 def test_inf_in_csv_on_the_cli(tmp_path, frame, capsys):
@@ -265,7 +265,7 @@ def test_inf_in_csv_on_the_cli(tmp_path, frame, capsys):
 
 def test_outcome_dates_are_out_of_scope(frame):
     dated = frame.assign(y=pd.Timestamp("2024-01-01") + pd.to_timedelta(frame.index, unit="D"))
-    input_error(dated, r"--outcome.*'y'.*dates")
+    input_error(dated, r"outcome.*'y'.*dates")
 
 
 def test_time_to_event_outcome_is_flagged(frame):
@@ -289,15 +289,15 @@ def test_all_covariates_constant(frame):
 
 def test_covariate_identical_to_exposure(frame):
     same = frame.assign(night_flag=(frame["grp"] == "night").astype(int))
-    input_error(same, r"--covariates.*'night_flag'.*exposure", covariates=["age", "night_flag"])
+    input_error(same, r"covariates.*'night_flag'.*exposure", covariates=["age", "night_flag"])
 
 
 def test_covariate_is_the_outcome(frame):
-    input_error(frame, r"--covariates.*'y'.*outcome", covariates=["age", "y"])
+    input_error(frame, r"covariates.*'y'.*outcome", covariates=["age", "y"])
 
 
 def test_id_like_text_covariate(frame):
-    input_error(frame, r"--covariates.*'person'.*identifier", covariates=["age", "person"])
+    input_error(frame, r"covariates.*'person'.*identifier", covariates=["age", "person"])
 
 
 def test_id_like_numeric_covariate_is_flagged(frame):
@@ -309,21 +309,21 @@ def test_id_like_numeric_covariate_is_flagged(frame):
 
 
 def test_empty_covariate_list(frame):
-    with pytest.raises(InputError, match="--covariates"):
+    with pytest.raises(InputError, match="`covariates`"):
         run(frame, covariates=[])
 
 
 def test_exposure_equals_outcome(frame):
     input_error(frame.assign(g01=(frame["grp"] == "night").astype(int)),
-                r"--exposure.*--outcome.*same", exposure="g01", outcome="g01", exposed_value=None)
+                r"exposure.*outcome.*same", exposure="g01", outcome="g01", exposed_value=None)
 
 
 def test_bad_formula(frame):
-    input_error(frame, r"--formula", covariates=None, formula="age + + (")
+    input_error(frame, r"formula", covariates=None, formula="age + + (")
 
 
 def test_measure_ratio_needs_binary_outcome(frame):
-    input_error(frame, r"--measure rr.*binary", measure="rr")
+    input_error(frame, r"measure=rr.*binary", measure="rr")
 
 
 # ------------------------------------------------------ separation and overlap (API + CLI)
@@ -357,11 +357,11 @@ def test_complete_separation_without_overlap_exits_2(tmp_path, frame, capsys):
 
 
 def test_too_many_strata(frame):
-    input_error(frame, r"--strata 200.*at most", n_strata=200)
+    input_error(frame, r"n_strata=200.*at most", n_strata=200)
 
 
 def test_strata_zero(frame):
-    input_error(frame, r"--strata", n_strata=0)
+    input_error(frame, r"n_strata", n_strata=0)
 
 
 def test_one_stratum_is_allowed(frame):
@@ -387,12 +387,12 @@ def test_binary_outcome_only_in_the_exposed_group(frame):
 
 def test_binary_outcome_identical_to_the_exposure(frame):
     # The outcome is the exposure recoded (a common extract mistake): the risk ratio is
-    # undefined. Expected: a one-line error naming --outcome, or a result; not an internal name.
+    # undefined. Expected: a one-line error naming outcome, or a result; not an internal name.
     same = frame.assign(ev=(frame["grp"] == "night").astype(int))
     try:
         res = run(same, outcome="ev")
     except InputError as exc:
-        assert "--outcome" in str(exc) and "\n" not in str(exc), str(exc)
+        assert "outcome" in str(exc) and "\n" not in str(exc), str(exc)
     else:
         assert 0 < res.to_dict()["test"]["p_value"] <= 1
 
@@ -465,13 +465,13 @@ def test_strata_column_and_adaptive_exclude_each_other(csv, capsys):
 
 def test_resamples_in_the_api(frame):
     for bad in (0, -1, 10**12, 2.5, "x", True):
-        with pytest.raises(InputError, match="--resamples"):
+        with pytest.raises(InputError, match="`resamples`"):
             run(frame, resamples=bad)
 
 
 def test_seed_in_the_api(frame):
     for bad in ("abc", 1.5, -3, None, True):
-        with pytest.raises(InputError, match="--seed"):
+        with pytest.raises(InputError, match="`seed`"):
             run(frame, seed=bad)
 
 
@@ -497,7 +497,7 @@ def test_missing_drop_counts_per_column_and_group(frame):
 
 
 def test_missing_error_policy_names_the_columns(frame):
-    msg = input_error(_holes(frame), r"--missing error.*'bmi'", missing="error")
+    msg = input_error(_holes(frame), r"missing=error.*'bmi'", missing="error")
     assert "'role'" in msg
 
 

@@ -91,7 +91,7 @@ def test_error_messages_are_one_line(tmp_path):
 def test_encoding_fallback_message_and_option(tmp_path):
     path = tmp_path / "latin.csv"
     path.write_bytes("name,x\nJos\xe9,1\nAn\xefs,2\n".encode("latin-1"))
-    with pytest.raises(InputError, match=r"latin\.csv.*cannot be decoded as UTF-8.*re-save it as UTF-8 or pass --encoding"):
+    with pytest.raises(InputError, match=r"latin\.csv.*cannot be decoded as UTF-8.*re-save it as UTF-8 or pass `encoding`"):
         read_table(path)
     got = read_table(path, encoding="latin-1")
     assert got["name"].tolist() == ["José", "Anïs"]
@@ -133,11 +133,11 @@ def test_input_never_modified(tmp_path):
 
 # ----------------------------------------------------------------------------- column checks
 @pytest.mark.parametrize("arg,kw", [
-    ("--exposure", {"exposure": "shfit"}),
-    ("--outcome", {"outcome": "sbpp"}),
-    ("--covariates", {"covariates": ["age", "sitee"]}),
-    ("--strata-column", {"strata_column": "sitte"}),
-    ("--negative-control", {"negative_control": "agee"}),
+    ("exposure", {"exposure": "shfit"}),
+    ("outcome", {"outcome": "sbpp"}),
+    ("covariates", {"covariates": ["age", "sitee"]}),
+    ("strata_column", {"strata_column": "sitte"}),
+    ("negative_control", {"negative_control": "agee"}),
 ])
 def test_unknown_column_named_with_suggestion(arg, kw):
     args = dict(exposure="shift", outcome="sbp", covariates=["age"]) | kw
@@ -151,11 +151,11 @@ def test_argument_validation():
         prepare([1, 2], exposure="shift", outcome="sbp", covariates=["age"])
     with pytest.raises(InputError, match="no rows"):
         prepare(df.iloc[:0], exposure="shift", outcome="sbp", covariates=["age"])
-    with pytest.raises(InputError, match="`--missing` must be"):
+    with pytest.raises(InputError, match="`missing` must be"):
         prepare(df, exposure="shift", outcome="sbp", covariates=["age"], missing="impute")
-    with pytest.raises(InputError, match="`--outcome-type` must be"):
+    with pytest.raises(InputError, match="`outcome_type` must be"):
         prepare(df, exposure="shift", outcome="sbp", covariates=["age"], outcome_type="count")
-    with pytest.raises(InputError, match="`--covariates` is empty"):
+    with pytest.raises(InputError, match="`covariates` is empty"):
         prepare(df, exposure="shift", outcome="sbp", covariates=[])
     with pytest.raises(InputError, match="same column"):
         prepare(df, exposure="shift", outcome="shift", covariates=["age"])
@@ -185,12 +185,12 @@ def test_exposure_01_and_bool_need_no_flag():
 def test_exposure_two_strings_need_exposed_value():
     df = invented()
     df["grp"] = np.where(df["shift"] == 1, "night", "day")
-    with pytest.raises(InputError, match=r"two values \(day, night\).*--exposed-value day or --exposed-value night"):
+    with pytest.raises(InputError, match=r"two values \(day, night\).*`exposed_value=day` or `exposed_value=night`"):
         prepare(df, exposure="grp", outcome="sbp", covariates=["age"])
     p = prepare(df, exposure="grp", outcome="sbp", covariates=["age"], exposed_value="night")
     assert np.array_equal(np.sort(p.t), np.sort(df["shift"].to_numpy()))
     assert p.exposure_levels == {"exposed": "night", "reference": "day"}
-    with pytest.raises(InputError, match="`--exposed-value` 'evening' is not one of"):
+    with pytest.raises(InputError, match="`exposed_value` 'evening' is not one of"):
         prepare(df, exposure="grp", outcome="sbp", covariates=["age"], exposed_value="evening")
 
 
@@ -244,14 +244,14 @@ def test_outcome_types():
 def test_outcome_two_strings_need_event():
     df = invented()
     df["status"] = np.where(df["sbp"] > 125, "high", "normal")
-    with pytest.raises(InputError, match=r"two values \(high, normal\).*--outcome-event high"):
+    with pytest.raises(InputError, match=r"two values \(high, normal\).*outcome_event=high"):
         prepare(df, exposure="shift", outcome="status", covariates=["age"])
     with pytest.raises(InputError, match=r"two values \(high, normal\)"):
         prepare(df, exposure="shift", outcome="status", covariates=["age"], outcome_type="binary")
     p = prepare(df, exposure="shift", outcome="status", covariates=["age"], outcome_event="high")
     assert p.outcome_type == "binary" and p.outcome_levels == {"event": "high", "non_event": "normal"}
     assert p.y.sum() == (df["status"] == "high").sum()
-    with pytest.raises(InputError, match="`--outcome-event` 'x' is not one of"):
+    with pytest.raises(InputError, match="`outcome_event` 'x' is not one of"):
         prepare(df, exposure="shift", outcome="status", covariates=["age"], outcome_event="x")
     with pytest.raises(InputError, match="applies to binary outcomes only"):
         prepare(df, exposure="shift", outcome="sbp", covariates=["age"], outcome_event=1,
@@ -261,17 +261,17 @@ def test_outcome_two_strings_need_event():
 def test_outcome_errors():
     df = invented()
     df["text"] = df["site"]
-    with pytest.raises(InputError, match=r"`--outcome` column 'text' is not numeric"):
+    with pytest.raises(InputError, match=r"`outcome` column 'text' is not numeric"):
         prepare(df, exposure="shift", outcome="text", covariates=["age"])
     df["flat"] = 3.0
-    with pytest.raises(InputError, match=r"`--outcome` column 'flat' is constant"):
+    with pytest.raises(InputError, match=r"`outcome` column 'flat' is constant"):
         prepare(df, exposure="shift", outcome="flat", covariates=["age"])
     with pytest.raises(InputError, match=r"'sbp' has 200 values.*binary outcome needs exactly 2"):
         prepare(df, exposure="shift", outcome="sbp", covariates=["age"], outcome_type="binary")
     with pytest.raises(InputError, match="'text' is not numeric"):
         prepare(df, exposure="shift", outcome="text", covariates=["age"], outcome_type="continuous")
     df["two"] = np.where(df["sbp"] > 120, 1, 2)
-    with pytest.raises(InputError, match="--outcome-event 1 or --outcome-event 2 or --outcome-type continuous"):
+    with pytest.raises(InputError, match="`outcome_event=1` or `outcome_event=2` or `outcome_type=continuous`"):
         prepare(df, exposure="shift", outcome="two", covariates=["age"])
 
 
@@ -361,11 +361,11 @@ def test_collinear_columns_dropped_with_warning():
 def test_infinite_values_rejected():
     df = invented().astype({"age": float})
     df.loc[[3, 7], "age"] = [np.inf, -np.inf]
-    with pytest.raises(InputError, match=r"`--covariates` column 'age' has 2 infinite value"):
+    with pytest.raises(InputError, match=r"`covariates` column 'age' has 2 infinite value"):
         prepare(df, exposure="shift", outcome="sbp", covariates=["age"])
     df = invented()
     df.loc[5, "sbp"] = np.inf
-    with pytest.raises(InputError, match=r"`--outcome` column 'sbp' has 1 infinite"):
+    with pytest.raises(InputError, match=r"`outcome` column 'sbp' has 1 infinite"):
         prepare(df, exposure="shift", outcome="sbp", covariates=["age"])
 
 
@@ -390,13 +390,13 @@ def test_formula_splines_and_options():
     df = invented()
     p = prepare(df, exposure="shift", outcome="sbp", covariates=["age"], formula="~ bs(age, df=3) + smoker")
     assert p.X.shape[1] == 4 and p.covariates == ["age", "smoker"]
-    with pytest.raises(InputError, match="`--covariates` names 'site', which the --formula does not use"):
+    with pytest.raises(InputError, match="`covariates` names 'site', which the `formula` does not use"):
         prepare(df, exposure="shift", outcome="sbp", covariates=["site"], formula="age")
     with pytest.raises(InputError, match="takes only the right-hand side"):
         prepare(df, exposure="shift", outcome="sbp", covariates=None, formula="sbp ~ age")
-    with pytest.raises(InputError, match=r"`--formula`: column 'agee' is not in the table; did you mean 'age'"):
+    with pytest.raises(InputError, match=r"`formula`: column 'agee' is not in the table; did you mean 'age'"):
         prepare(df, exposure="shift", outcome="sbp", covariates=None, formula="I(agee**2) + site")
-    with pytest.raises(InputError, match="`--formula` could not be parsed"):
+    with pytest.raises(InputError, match="`formula` could not be parsed"):
         prepare(df, exposure="shift", outcome="sbp", covariates=None, formula="age + (")
     with pytest.raises(InputError, match=r"design column 'np.log\(smoker\)' has \d+ non-finite"):
         prepare(df, exposure="shift", outcome="sbp", covariates=None, formula="age + np.log(smoker)")
@@ -430,7 +430,7 @@ def test_missing_drop_counts():
 
 
 def test_missing_error_policy():
-    with pytest.raises(InputError, match=r"`--missing error`: covariates have missing values \('age': 3, 'site': 2\)"):
+    with pytest.raises(InputError, match=r"`missing=error`: covariates have missing values \('age': 3, 'site': 2\)"):
         prepare(with_gaps(), exposure="shift", outcome="sbp", covariates=["age", "site"], missing="error")
 
 
@@ -532,11 +532,11 @@ def test_result_types_and_json():
 
 def test_negative_control_and_strata_checks():
     df = invented()
-    with pytest.raises(InputError, match="`--negative-control` column 'site' is not numeric"):
+    with pytest.raises(InputError, match="`negative_control` column 'site' is not numeric"):
         prepare(df, exposure="shift", outcome="sbp", covariates=["age"], negative_control="site")
-    with pytest.raises(InputError, match="`--negative-control` 'age' is also the exposure, outcome or a covariate"):
+    with pytest.raises(InputError, match="`negative_control` 'age' is also the exposure, outcome or a covariate"):
         prepare(df, exposure="shift", outcome="sbp", covariates=["age"], negative_control="age")
-    with pytest.raises(InputError, match="`--strata-column` 'shift' is also"):
+    with pytest.raises(InputError, match="`strata_column` 'shift' is also"):
         prepare(df, exposure="shift", outcome="sbp", covariates=["age"], strata_column="shift")
 
 

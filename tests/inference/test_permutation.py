@@ -271,7 +271,7 @@ def test_auto_engine_choice_and_labels():
                              statistic="sum").engine == "exact"
     nrm = P.stratified_test(yb, tb, lb, estimand="ate", engine="normal")
     assert nrm.p_value == nrm.normal_p_value and nrm.mc_se is None
-    with pytest.raises(InputError, match="engine"):
+    with pytest.raises(InputError, match="`engine`"):
         P.stratified_test(yb, tb, lb, estimand="ate", engine="exact")
 
 
@@ -317,19 +317,19 @@ def test_progress_called_per_batch():
 @pytest.mark.parametrize("bad", [0, -3, 1.5, True, 10**8, "100"])
 def test_bad_resamples(bad):
     y, t, labels = _tiny(0)
-    with pytest.raises(InputError, match="--resamples"):
+    with pytest.raises(InputError, match="`resamples`"):
         P.stratified_test(y, t, labels, estimand="ate", resamples=bad)
 
 
 def test_bad_arguments():
     y, t, labels = _tiny(0)
-    with pytest.raises(InputError, match="--alternative"):
+    with pytest.raises(InputError, match="`alternative`"):
         P.stratified_test(y, t, labels, estimand="ate", alternative="both")
-    with pytest.raises(InputError, match="engine"):
+    with pytest.raises(InputError, match="`engine`"):
         P.stratified_test(y, t, labels, estimand="ate", engine="fast")
-    with pytest.raises(InputError, match="statistic"):
+    with pytest.raises(InputError, match="`statistic`"):
         P.stratified_test(y, t, labels, estimand="ate", statistic="median")
-    with pytest.raises(InputError, match="estimand"):
+    with pytest.raises(InputError, match="`estimand`"):
         P.stratified_test(y, t, labels, estimand="atc")
     with pytest.raises(InputError, match="labels"):
         P.stratified_test(y, t, labels[:-1], estimand="ate")

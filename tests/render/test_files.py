@@ -13,7 +13,7 @@ from stratagap.result import to_json
 
 def test_refuses_non_empty_folder_without_overwrite(tmp_path):
     (tmp_path / "old.txt").write_text("x")
-    with pytest.raises(InputError, match="--overwrite"):
+    with pytest.raises(InputError, match="`overwrite`"):
         prepare_folder(tmp_path)
     assert prepare_folder(tmp_path, overwrite=True) == tmp_path.resolve()
 
@@ -21,9 +21,9 @@ def test_refuses_non_empty_folder_without_overwrite(tmp_path):
 def test_refuses_output_equal_to_or_inside_input(tmp_path):
     data = tmp_path / "data.csv"
     data.write_text("a,b\n1,2\n")
-    with pytest.raises(InputError, match="--out"):
+    with pytest.raises(InputError, match="`out`"):
         prepare_folder(data, inputs=[data])
-    with pytest.raises(InputError, match="--out"):
+    with pytest.raises(InputError, match="`out`"):
         prepare_folder(data / "sub", inputs=[data])
     assert data.read_text() == "a,b\n1,2\n"
 

@@ -100,13 +100,13 @@ def test_no_overlap_is_an_input_error_that_says_what_to_do():
 def test_too_few_left_is_an_input_error():
     score = np.array([0.95, 0.96, 0.5, 0.1, 0.2, 0.97])
     t = np.array([1, 1, 1, 0, 0, 0], dtype=np.int8)
-    with pytest.raises(InputError, match="--trim crump.*leaves 1 exposed"):
+    with pytest.raises(InputError, match="trim=crump.*leaves 1 exposed"):
         apply_overlap(score, t, estimand="ate", rule="crump")
 
 
 @pytest.mark.parametrize("kwargs, match", [
-    ({"estimand": "atc"}, "--estimand"),
-    ({"estimand": "ate", "rule": "trim"}, "--trim"),
+    ({"estimand": "atc"}, "`estimand`"),
+    ({"estimand": "ate", "rule": "trim"}, "`trim`"),
 ])
 def test_bad_arguments(kwargs, match):
     score, t = scores()

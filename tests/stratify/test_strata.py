@@ -88,7 +88,7 @@ def test_too_many_strata_is_an_input_error_naming_the_option():
     score, t = confounded(n=60)
     n1 = int(t.sum())
     maximum = min(60 // 6, min(n1, 60 - n1) // 2)
-    with pytest.raises(InputError, match=rf"--strata 50.*at most {maximum}.*--strata {maximum}"):
+    with pytest.raises(InputError, match=rf"n_strata=50.*at most {maximum}.*n_strata={maximum}"):
         make_strata(score, t, estimand="ate", n_strata=50)
 
 
@@ -138,7 +138,7 @@ def test_user_strata_lacking_a_group_are_set_aside_and_counted():
 
 def test_user_strata_none_usable_is_an_error():
     t = np.array([1, 1, 0, 0], dtype=np.int8)
-    with pytest.raises(InputError, match="--strata-column"):
+    with pytest.raises(InputError, match="`strata_column`"):
         make_strata(np.full(4, 0.5), t, estimand="ate", user_labels=np.array([1, 1, 2, 2]))
 
 
