@@ -21,7 +21,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import linalg
 
-__all__ = ["ordered_independent_columns", "ordered_dependent_share", "pivoted_independent_columns", "hc2_ols",
+__all__ = ["ordered_independent_columns", "pivoted_independent_columns", "hc2_ols",
            "COLLINEAR_TOL", "LEVERAGE_TOL"]
 
 #: A column whose norm after projecting out the columns before it is below this share of its own
@@ -44,16 +44,22 @@ def _ordered_diag(Z: np.ndarray) -> np.ndarray:
 
 
 def ordered_independent_columns(Z: np.ndarray, tol: float = COLLINEAR_TOL) -> np.ndarray:
-    """Indices of the columns of ``Z`` that are not linear combinations of earlier ones."""
-    if Z.shape[1] == 0:
-        return np.arange(0)
-    norms = np.linalg.norm(Z, axis=0)
-    return np.flatnonzero(_ordered_diag(Z) > tol * np.maximum(norms, 1e-300))
+    """Indices of the columns of ``Z`` that are not linear combinations of earlier kept ones.
 
-
-def ordered_dependent_share(Z: np.ndarray) -> np.ndarray:
-    """For each column, the share of its norm left after projecting out the columns before it."""
-    return _ordered_diag(Z) / np.linalg.norm(Z, axis=0)
+    One dependent column is dropped at a time, the first found, and the QR is redone: in the QR
+    of a matrix with a dependent column, that column's direction is rounding noise, and
+    projecting the later columns on it could make an independent column look dependent (which
+    one would then depend on the order of the rows). Columns before the first dependent one are
+    not affected by the columns after it, so the answer is the greedy one.
+    """
+    keep = np.arange(Z.shape[1])
+    norms = np.maximum(np.linalg.norm(Z, axis=0), 1e-300)
+    while keep.size:
+        dependent = np.flatnonzero(_ordered_diag(Z[:, keep]) <= tol * norms[keep])
+        if dependent.size == 0:
+            break
+        keep = np.delete(keep, dependent[0])
+    return keep
 
 
 def pivoted_independent_columns(Z: np.ndarray) -> np.ndarray:

@@ -34,7 +34,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .._base.linalg import COLLINEAR_TOL, LEVERAGE_TOL, hc2_ols, ordered_dependent_share
+from .._base.linalg import COLLINEAR_TOL, LEVERAGE_TOL, hc2_ols, ordered_independent_columns
 
 
 def _screen_columns(Xc: np.ndarray, t: np.ndarray, names):
@@ -60,8 +60,8 @@ def _screen_columns(Xc: np.ndarray, t: np.ndarray, names):
     if Z.shape[1]:
         Z = Z / Z.std(axis=0)
         D = np.column_stack([np.ones(n), t, Z])
-        rel = ordered_dependent_share(D)[2:]
-        dependent = rel <= COLLINEAR_TOL
+        kept = ordered_independent_columns(D)  # the constant and the exposure come first
+        dependent = ~np.isin(np.arange(2, D.shape[1]), kept)
         if dependent.any():
             notes.append("linear combination of other columns (or of the exposure): "
                          + ", ".join(names[keep[j]] for j in np.flatnonzero(dependent)))
