@@ -179,7 +179,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
     clock.lap("heterogeneity")
 
     sensitivity = _sensitivity.sensitivity_analysis(
-        tests["values"], t, labels, X, y, terms, observed=tests["main"].statistic,
+        tests["values"], t, labels, X, y, terms, test=tests["main"],
         statistic="sum" if spec.statistic == "sum" else "mean_difference",
         estimand=spec.estimand, alternative=spec.alternative, alpha=spec.alpha,
         gammas=spec.gamma_grid, adjusted=adjusted, risk_ratio=risk_ratio, binary=binary)

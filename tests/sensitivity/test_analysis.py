@@ -51,7 +51,10 @@ def test_block_is_the_stage_functions_and_round_trips():
     y = 0.4 * t + x + rng.normal(size=n)
     values = y - x
     adjusted = SimpleNamespace(estimate=0.4, ci_low=0.1, ci_high=0.7, se=0.15)
-    out = sensitivity_analysis(values, t, labels, x[:, None], y, [], observed=-0.3,
+    # a test of another statistic: the bounds are the stage functions' own, not anchored
+    test = SimpleNamespace(statistic=-0.3, normal_mean=0.0, statistic_name="studentized",
+                           p_greater=0.9, p_less=0.1, engine="monte_carlo")
+    out = sensitivity_analysis(values, t, labels, x[:, None], y, [], test=test,
                                statistic="mean_difference", estimand="ate",
                                alternative="two-sided", alpha=0.05, gammas=DEFAULT_GAMMAS,
                                adjusted=adjusted, risk_ratio=None, binary=False)
@@ -67,3 +70,53 @@ def test_block_is_the_stage_functions_and_round_trips():
     assert json.loads(json.dumps(d, allow_nan=False)) == d
     assert list(d) == ["e_value", "gamma_threshold", "gamma_threshold_detail", "gamma_level",
                        "gamma_direction", "gamma_curve", "gamma_bounds", "tipping"]
+
+
+def _block(values, t, labels, y, test):
+    adjusted = SimpleNamespace(estimate=0.4, ci_low=0.1, ci_high=0.7, se=0.15)
+    return sensitivity_analysis(values, t, labels, values[:, None] * 0, y, [], test=test,
+                                statistic="mean_difference", estimand="ate",
+                                alternative="greater", alpha=0.05, gammas=DEFAULT_GAMMAS,
+                                adjusted=adjusted, risk_ratio=None, binary=False)
+
+
+def test_gamma_one_is_the_tests_own_p_value_and_the_curve_never_falls_below_it():
+    """At Gamma = 1 the sensitivity model is the randomization distribution (Rosenbaum 2002,
+    ch. 4): the curve there is the test's one-sided p-value, whichever engine computed it,
+    and the worst case cannot fall below it at a larger Gamma."""
+    rng = np.random.default_rng(8)
+    n = 120
+    labels = np.repeat(np.arange(3), n // 3).astype(np.int64)
+    t = (rng.random(n) < 0.5).astype(np.int8)
+    y = 0.5 * t + rng.exponential(size=n)
+    from stratagap.inference.permutation import stratified_test
+    test = stratified_test(y, t, labels, statistic="mean_difference", alternative="greater",
+                           estimand="ate",
+                           engine="monte_carlo", resamples=999, seed=4)
+    out = _block(y.astype(float), t, labels, y, test)
+    curve = out.gamma_curve
+    assert curve[0]["gamma"] == 1.0 and curve[0]["p_upper"] == test.p_greater
+    assert curve[0]["p_upper"] != test.normal_p_greater  # the MC value, not the normal one
+    assert all(c["p_upper"] >= test.p_greater and c["p_separable"] >= test.p_greater
+               for c in curve)
+    assert "own one-sided p-value" in out.gamma_bounds.at_one
+
+
+@pytest.mark.parametrize("p_test, expected", [(0.2, "not significant at Gamma=1"),
+                                              (0.01, "significant at Gamma=1 only")])
+def test_significance_at_gamma_one_follows_the_test(p_test, expected):
+    rng = np.random.default_rng(9)
+    n = 60
+    labels = np.repeat(np.arange(2), n // 2).astype(np.int64)
+    t = (rng.random(n) < 0.5).astype(np.int8)
+    y = rng.normal(size=n) + 0.35 * t  # a normal p near 0.05-0.2: on the other side of the test's
+    values = y.astype(float)
+    normal = sensitivity_value(values, t, labels, estimand="ate", direction="greater",
+                               alpha=0.05)
+    test = SimpleNamespace(statistic=1.0, normal_mean=0.0, statistic_name="mean_difference",
+                           p_greater=p_test, p_less=1 - p_test, engine="monte_carlo")
+    out = _block(values, t, labels, y, test)
+    if expected == "significant at Gamma=1 only":
+        assert normal.flag == "not significant at Gamma=1"  # the normal value alone says not
+    assert out.gamma_threshold_detail.flag == expected
+    assert out.gamma_threshold == 1.0

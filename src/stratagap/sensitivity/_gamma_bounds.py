@@ -24,7 +24,7 @@ Two bounds, always of the statistic the core test reported:
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy import optimize
@@ -37,7 +37,7 @@ from ..inference import Statistic
 from ._nchyper import _cut_moments, _normal_sf, _perm_moments
 from ._gamma_binary import _binary_exact_p, _binary_normal_p, _binary_setup, _convolution_cost
 
-__all__ = ["GammaBounds", "SensitivityValue", "gamma_bounds", "sensitivity_value",
+__all__ = ["GammaBounds", "SensitivityValue", "gamma_bounds", "sensitivity_value", "anchor_at_one",
            "DEFAULT_GAMMAS", "GAMMA_CAP"]
 
 DEFAULT_GAMMAS = (1.0, 1.1, 1.2, 1.3, 1.5, 1.75, 2.0, 2.5, 3.0, 4.0, 5.0, 7.5, 10.0)
@@ -88,10 +88,11 @@ class GammaBounds:
     observed: float
     n_strata: int
     moments: str = "exact"
+    at_one: str = "bound"  # "bound", or where the Gamma = 1 value came from (see anchor_at_one)
 
     def to_dict(self) -> dict:
         d = {k: getattr(self, k) for k in ("method", "method_text", "statistic", "direction", "estimand",
-                                           "observed", "n_strata", "moments")}
+                                           "observed", "n_strata", "moments", "at_one")}
         d["curve"] = [{"gamma": g, "p_upper": p, "p_separable": q}
                       for g, p, q in zip(self.gammas, self.p_upper, self.p_separable)]
         return _jsonable(d)
@@ -345,8 +346,37 @@ def _root(f, alpha, cap):
     return gamma, "ok"
 
 
+def _root_from_test(f, alpha, cap, p_at_one):
+    """:func:`_root` with the test's own p-value at Gamma = 1 when given."""
+    if p_at_one is None:
+        return _root(f, alpha, cap)
+    if p_at_one > alpha:
+        return 1.0, "not significant at Gamma=1"
+    if f(1.0) > alpha:  # the normal bound disagrees with the test at Gamma = 1 itself
+        return 1.0, "significant at Gamma=1 only"
+    return _root(f, alpha, cap)
+
+
+def anchor_at_one(bounds: GammaBounds, p_at_one: float, engine: str) -> GammaBounds:
+    """The curve anchored at the test's own one-sided p-value.
+
+    At Gamma = 1 the sensitivity model is the randomization distribution of the test, so the
+    test's p-value (from whatever engine it used) is the value there. The worst-case p-value
+    does not decrease as Gamma grows (a larger Gamma allows every allocation a smaller one
+    allows; Rosenbaum 2002, sec. 4.3), so for Gamma > 1 each end of the normal bracket is
+    raised to at least that value.
+    """
+    p_up = [p_at_one if g == 1.0 else max(p, p_at_one) for g, p in zip(bounds.gammas, bounds.p_upper)]
+    p_sep = [p_at_one if g == 1.0 else max(p, p_at_one)
+             for g, p in zip(bounds.gammas, bounds.p_separable)]
+    return replace(bounds, p_upper=p_up, p_separable=p_sep,
+                   at_one=f"the test's own one-sided p-value ({engine} engine); for Gamma > 1 "
+                          "at least that value")
+
+
 def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_difference", direction="auto",
-                      alpha=0.05, two_sided=False, cap=GAMMA_CAP, layout=None) -> SensitivityValue:
+                      alpha=0.05, two_sided=False, cap=GAMMA_CAP, layout=None,
+                      p_at_one=None) -> SensitivityValue:
     """The Gamma at which the one-sided p-value bound reaches alpha (root finding on log Gamma).
 
     Parameters
@@ -357,6 +387,12 @@ def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_diff
         Level. With ``two_sided=True`` (the core test was two-sided) each side uses alpha/2.
     cap : float, default 1000
         Largest Gamma searched; beyond it the result is flagged "> cap".
+    p_at_one : float, optional
+        The test's own one-sided p-value (same statistic, same direction). At Gamma = 1 the
+        sensitivity model is the randomization distribution, so this is the exact value of the
+        bound there; given, it decides significance at Gamma = 1 instead of the normal
+        approximation. If the test is significant but the bound is already above the level just
+        past Gamma = 1, the sensitivity value is 1 (flag "significant at Gamma=1 only").
 
     Returns
     -------
@@ -379,8 +415,8 @@ def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_diff
     note = (f"one-sided bound at alpha/2 = {level:g} per side (the core test is two-sided)" if two_sided
             else f"one-sided bound at alpha = {level:g}")
     b = _Bounder(values, t, labels, estimand, statistic, direction, layout)
-    g_up, flag_up = _root(lambda g: b(g)[0], level, cap)
-    g_sep, flag_sep = _root(lambda g: b(g)[1], level, cap)
+    g_up, flag_up = _root_from_test(lambda g: b(g)[0], level, cap, p_at_one)
+    g_sep, flag_sep = _root_from_test(lambda g: b(g)[1], level, cap, p_at_one)
     return SensitivityValue(gamma=g_up, gamma_separable=g_sep, flag=flag_up, flag_separable=flag_sep,
                             alpha=level, alpha_note=note, cap=cap, p_at_gamma=b(g_up)[0], method=b.method,
                             statistic=statistic, direction=b.direction, estimand=estimand, moments=b.moments)

@@ -10,7 +10,8 @@ from dataclasses import dataclass
 
 from .._base.jsonable import jsonable
 from ._evalue import EValue, headline_e_value
-from ._gamma_bounds import GammaBounds, SensitivityValue, gamma_bounds, sensitivity_value
+from ._gamma_bounds import (GammaBounds, SensitivityValue, anchor_at_one, gamma_bounds,
+                            sensitivity_value)
 from ._tipping import TippingGrid, covariate_benchmarks, tipping_grid
 
 __all__ = ["Sensitivity", "sensitivity_analysis"]
@@ -48,7 +49,7 @@ class Sensitivity:
             "tipping": self.tipping})
 
 
-def sensitivity_analysis(values, t, labels, X, y, terms, *, observed: float, statistic: str,
+def sensitivity_analysis(values, t, labels, X, y, terms, *, test, statistic: str,
                          estimand: str, alternative: str, alpha: float, gammas, adjusted,
                          risk_ratio, binary: bool) -> Sensitivity:
     """Every sensitivity view of one analysis.
@@ -61,8 +62,10 @@ def sensitivity_analysis(values, t, labels, X, y, terms, *, observed: float, sta
         The analysed rows: exposure, stratum labels, design matrix, outcome.
     terms : list
         The analysed covariate terms (benchmarks for the tipping grid).
-    observed : float
-        The headline test's statistic; its sign picks the direction of the bounds.
+    test : :class:`stratagap.inference.permutation.PermutationResult`
+        The headline test. The side of its statistic relative to its null mean picks the
+        direction of the bounds; when it ran on the statistic bounded here, its own one-sided
+        p-value in that direction is the value at Gamma = 1.
     statistic : {"sum", "mean_difference"}
         The statistic the bounds are computed for.
     estimand, alternative, alpha, gammas
@@ -76,12 +79,17 @@ def sensitivity_analysis(values, t, labels, X, y, terms, *, observed: float, sta
     -------
     Sensitivity
     """
-    direction = "greater" if observed >= 0 else "less"
+    # the sum statistic is not centred: its side is read against the null mean, not against 0
+    direction = "greater" if test.statistic >= test.normal_mean else "less"
+    same_statistic = test.statistic_name == statistic
+    p_at_one = (test.p_greater if direction == "greater" else test.p_less) if same_statistic else None
     bounds = gamma_bounds(values, t, labels, estimand=estimand, statistic=statistic,
                           direction=direction, gammas=gammas)
+    if p_at_one is not None:
+        bounds = anchor_at_one(bounds, p_at_one, test.engine)
     threshold = sensitivity_value(values, t, labels, estimand=estimand, statistic=statistic,
                                   direction=direction, alpha=alpha,
-                                  two_sided=alternative == "two-sided")
+                                  two_sided=alternative == "two-sided", p_at_one=p_at_one)
     e_value = headline_e_value(adjusted, risk_ratio, y, t, binary=binary, alpha=alpha)
     benchmarks = covariate_benchmarks(terms, X, y, t)
     tipping = tipping_grid(adjusted.estimate, adjusted.ci_low, adjusted.ci_high,
