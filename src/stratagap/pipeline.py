@@ -182,7 +182,8 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
         tests["values"], t, labels, X, y, terms, test=tests["main"],
         statistic="sum" if spec.statistic == "sum" else "mean_difference",
         estimand=spec.estimand, alternative=spec.alternative, alpha=spec.alpha,
-        gammas=spec.gamma_grid, adjusted=adjusted, risk_ratio=risk_ratio, binary=binary)
+        gammas=spec.gamma_grid, adjusted=adjusted, risk_ratio=risk_ratio, binary=binary,
+        seed=spec.seed)
     clock.lap("sensitivity")
     negative = None if prepared.negative_control is None else _sensitivity.negative_control_check(
         prepared.negative_control[used], t, X, labels, column=spec.negative_control,

@@ -35,6 +35,7 @@ from .._base.jsonable import jsonable as _jsonable
 from .._base.layout import layout_for
 from ..inference import Statistic
 from ._nchyper import _cut_moments, _normal_sf, _perm_moments
+from . import _gamma_monte_carlo as _mc
 from ._gamma_binary import _binary_exact_p, _binary_normal_p, _binary_setup, _convolution_cost
 
 __all__ = ["GammaBounds", "SensitivityValue", "gamma_bounds", "sensitivity_value", "anchor_at_one",
@@ -89,12 +90,15 @@ class GammaBounds:
     n_strata: int
     moments: str = "exact"
     at_one: str = "bound"  # "bound", or where the Gamma = 1 value came from (see anchor_at_one)
+    p_monte_carlo: list | None = None  # per Gamma: None, or the estimate at the selected allocation
+    monte_carlo: dict | None = None    # label, resamples, mc_se per Gamma, what the number means
 
     def to_dict(self) -> dict:
         d = {k: getattr(self, k) for k in ("method", "method_text", "statistic", "direction", "estimand",
-                                           "observed", "n_strata", "moments", "at_one")}
-        d["curve"] = [{"gamma": g, "p_upper": p, "p_separable": q}
-                      for g, p, q in zip(self.gammas, self.p_upper, self.p_separable)]
+                                           "observed", "n_strata", "moments", "at_one", "monte_carlo")}
+        mc = self.p_monte_carlo or [None] * len(self.gammas)
+        d["curve"] = [{"gamma": g, "p_upper": p, "p_separable": q, "p_monte_carlo": m}
+                      for g, p, q, m in zip(self.gammas, self.p_upper, self.p_separable, mc)]
         return _jsonable(d)
 
 
@@ -278,7 +282,7 @@ def _check_gammas(gammas):
 
 
 def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_difference", direction="greater",
-                 gammas=DEFAULT_GAMMAS, layout=None) -> GammaBounds:
+                 gammas=DEFAULT_GAMMAS, layout=None, monte_carlo_level=None, seed=0) -> GammaBounds:
     """Upper bounds on the one-sided p-value of the stratified test for each Gamma.
 
     Parameters
@@ -300,6 +304,10 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
     gammas : sequence of float >= 1
     layout : :class:`stratagap._base.layout.StratumLayout`, optional
         The caller's layout of the rows with ``labels >= 0``; None builds it here.
+    monte_carlo_level : float, optional
+        With a bracket, at each Gamma > 1 where its two ends fall on either side of this level,
+        add a Monte Carlo p-value at the allocation the separable end selects
+        (:mod:`stratagap.sensitivity._gamma_monte_carlo`), seeded from ``seed``.
 
     Returns
     -------
@@ -322,10 +330,26 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
     gammas = _check_gammas(gammas)
     b = _Bounder(values, t, labels, estimand, statistic, direction, layout)
     p_up, p_sep = zip(*(b(g) for g in gammas))
+    p_mc, mc = None, None
+    if monte_carlo_level is not None and b.method == "bracket":
+        where = _mc.disagreeing(gammas, p_up, p_sep, monte_carlo_level)
+        if where:
+            got = _mc.monte_carlo_at_allocation(b.design, where, seed=seed, cache=b._cache)
+            at = dict(zip(where, got["p"]))
+            p_mc = [at.get(g) for g in gammas]
+            pairs = all(n == 2 for n, _n1, _V in b.design.groups)
+            mc = {"label": _mc.LABEL, "resamples": got["resamples"],
+                  "mc_se": dict(zip((str(g) for g in where), got["mc_se"])),
+                  "level": monte_carlo_level,
+                  "meaning": ("an unbiased estimate of the bound (matched pairs: the selected "
+                              "allocation is the worst case)") if pairs else
+                             ("the p-value at one allocation of hidden bias: a lower estimate of "
+                              "the worst case, shown beside the normal bracket"),
+                  "where": "each Gamma > 1 at which the bracket's ends fall on either side of the level"}
     return GammaBounds(gammas=list(gammas), p_upper=list(p_up), p_separable=list(p_sep), method=b.method,
                        method_text=_METHOD_TEXT[b.method], statistic=statistic, direction=b.direction,
                        estimand=estimand, observed=b.design.observed, n_strata=b.design.n_strata,
-                       moments=b.moments)
+                       moments=b.moments, p_monte_carlo=p_mc, monte_carlo=mc)
 
 
 def _root(f, alpha, cap):

@@ -51,7 +51,7 @@ class Sensitivity:
 
 def sensitivity_analysis(values, t, labels, X, y, terms, *, test, statistic: str,
                          estimand: str, alternative: str, alpha: float, gammas, adjusted,
-                         risk_ratio, binary: bool) -> Sensitivity:
+                         risk_ratio, binary: bool, seed: int = 0) -> Sensitivity:
     """Every sensitivity view of one analysis.
 
     Parameters
@@ -74,6 +74,9 @@ def sensitivity_analysis(values, t, labels, X, y, terms, *, test, statistic: str
         The headline estimate and (binary outcomes) the standardized risk ratio.
     binary : bool
         Whether the outcome is binary (picks the E-value's scale).
+    seed : int
+        Seed of the Monte Carlo estimates at the selected allocation (Gammas where the normal
+        bracket straddles the level).
 
     Returns
     -------
@@ -83,8 +86,9 @@ def sensitivity_analysis(values, t, labels, X, y, terms, *, test, statistic: str
     direction = "greater" if test.statistic >= test.normal_mean else "less"
     same_statistic = test.statistic_name == statistic
     p_at_one = (test.p_greater if direction == "greater" else test.p_less) if same_statistic else None
+    level = alpha / 2.0 if alternative == "two-sided" else alpha
     bounds = gamma_bounds(values, t, labels, estimand=estimand, statistic=statistic,
-                          direction=direction, gammas=gammas)
+                          direction=direction, gammas=gammas, monte_carlo_level=level, seed=seed)
     if p_at_one is not None:
         bounds = anchor_at_one(bounds, p_at_one, test.engine)
     threshold = sensitivity_value(values, t, labels, estimand=estimand, statistic=statistic,
