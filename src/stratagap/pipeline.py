@@ -168,7 +168,9 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
                                      truncate=spec.truncate_weights,
                                      score=propensity.score[used], estimand_label=population,
                                      censoring_weights=None if prepared.censoring_weights is None
-                                     else prepared.censoring_weights[used])
+                                     else prepared.censoring_weights[used],
+                                     censoring_score=None if prepared.censoring_score is None
+                                     else prepared.censoring_score[used])
     if prepared.censoring_weights is not None:
         warnings.warn("Censoring weights enter the cross-check row 'IPW x censoring weights'; the "
                       "stratified headline and the permutation test use the complete cases "

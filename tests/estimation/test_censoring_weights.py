@@ -1,6 +1,7 @@
 """The `censoring_weights` option: complete cases weighted by 1 / P(outcome observed).
 
-Checked against statsmodels: the weights' logistic model (Logit of observed on [1, X, t]) and a
+Checked against statsmodels: the weights' logistic model (Logit of observed on [1, X, t]), the
+exposure model (Logit of t on [1, X]) on every row with complete covariates, and a
 weighted least-squares fit of y on [1, t] with the combined weights, whose HC0 sandwich is the
 variance of a difference of two Hájek means with the weights treated as known (What If §12.6
 uses this robust-variance practice; from memory).
@@ -32,10 +33,12 @@ def test_censoring_weighted_row_matches_statsmodels():
     full = d.assign(obs=d["y"].notna().astype(int))
     design = sm.add_constant(full[["x", "t"]].to_numpy(float))
     p_obs = sm.Logit(full["obs"].to_numpy(), design).fit(disp=0).predict(design)
-    cc = full[full["obs"] == 1].copy()
-    cc["wc"] = 1 / p_obs[full["obs"].to_numpy() == 1]
-    Xs = sm.add_constant(cc[["x"]].to_numpy(float))
-    e = sm.Logit(cc["t"].to_numpy(), Xs).fit(disp=0).predict(Xs)
+    observed = full["obs"].to_numpy() == 1
+    cc = full[observed].copy()
+    cc["wc"] = 1 / p_obs[observed]
+    # the exposure model on every row with complete covariates, censored ones included
+    Xall = sm.add_constant(full[["x"]].to_numpy(float))
+    e = sm.Logit(full["t"].to_numpy(), Xall).fit(disp=0).predict(Xall)[observed]
     w = np.where(cc["t"] == 1, 1 / e, 1 / (1 - e)) * cc["wc"].to_numpy()
     wls = sm.WLS(cc["y"].to_numpy(), sm.add_constant(cc[["t"]].to_numpy(float)),
                  weights=w).fit(cov_type="HC0")

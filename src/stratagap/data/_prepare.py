@@ -99,6 +99,7 @@ class PreparedData:
     negative_control: np.ndarray | None
     outcome_levels: dict | None
     censoring_weights: np.ndarray | None = None
+    censoring_score: np.ndarray | None = None
     exposure: str = ""
     outcome: str = ""
     formula: str | None = None
@@ -241,12 +242,14 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     filled, formula_used = _design.fill_missing(cand, covariates, formula, missing)
     keep = cand[outcome].notna().to_numpy()
 
-    cw = None
+    cw = cs = None
     if censoring_weights:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             Xc = _design.build(filled, covariates, formula_used, cand["__t__"].to_numpy()).X
         cw = observed_weights(Xc, cand["__t__"].to_numpy(), keep)[keep]
+        cs = exposure_score_all_rows(Xc, cand["__t__"].to_numpy())
+        cs = None if cs is None else cs[keep]
 
     work = filled.loc[keep].reset_index(drop=True)
     raw = cand.loc[keep, cols].reset_index(drop=True)
@@ -278,10 +281,25 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     return PreparedData(
         t=t, y=y, X=design.X, design_names=design.names, terms=design.terms, outcome_type=out_type,
         exposure_levels=levels, flow=flow, covariates=design.covariates, raw=raw, user_strata=strata,
-        negative_control=nc, outcome_levels=out_levels, censoring_weights=cw, exposure=exposure,
+        negative_control=nc, outcome_levels=out_levels, censoring_weights=cw, censoring_score=cs, exposure=exposure,
         outcome=outcome, formula=formula_used, reference_levels=design.reference_levels,
         dropped_design_columns=design.dropped, strata_levels=strata_levels,
         row_ids=work["__row__"].to_numpy().astype(np.int64))
+
+
+def exposure_score_all_rows(X, t) -> np.ndarray | None:
+    """P(exposed | X) from a logistic model fitted on every row with complete covariates.
+
+    With censoring weights the exposure model is fitted on all rows whose covariates are known,
+    those with a missing outcome included (Hernán & Robins 2020, §12.6, fit it on all 1,629
+    NHEFS rows, from memory): the complete cases alone would give the exposure model of the
+    uncensored, which is not the population the weights stand for. None when the fit
+    separates or fails (the cross-check then uses its own complete-case score and says so).
+    """
+    fit = fit_ml(np.column_stack([np.ones(len(t)), np.asarray(X, float)]), np.asarray(t, float))
+    if fit.failed or fit.problems or not fit.converged:
+        return None
+    return fit.fitted
 
 
 def observed_weights(X, t, observed) -> np.ndarray:

@@ -341,7 +341,7 @@ def _ipw_row(fit, measure, alpha, estimand, label, truncate):
                 se_method=se_method, notes=notes, details={"se_known_score": known})
 
 
-def _censoring_row(y, t, e, cw, measure, alpha, estimand, label):
+def _censoring_row(y, t, e, cw, measure, alpha, estimand, label, note):
     """Hájek IPW with each unit's weight multiplied by its inverse probability of an observed
     outcome (Hernán & Robins, What If, §12.6). The SE is the sandwich for the two weighted means
     with both sets of weights treated as known (the What If practice, from memory)."""
@@ -354,7 +354,8 @@ def _censoring_row(y, t, e, cw, measure, alpha, estimand, label):
     return _row("IPW x censoring weights (Hájek)", fit, measure=measure, alpha=alpha,
                 estimand=estimand, label=label,
                 se_method="sandwich treating the exposure and censoring weights as known",
-                notes=["complete cases weighted by 1 / P(outcome observed | covariates, exposure)"])
+                notes=["complete cases weighted by 1 / P(outcome observed | covariates, exposure)",
+                       note])
 
 
 def _diagnostics(fit, t, estimand, truncate):
@@ -451,7 +452,7 @@ def standardize(y, t, X, *, estimand, outcome_type, alpha=0.05, measure="differe
 @_one_blas_thread
 def cross_checks(y, t, X, *, estimand, alpha=0.05, outcome_type, measure="difference",
                  truncate=None, score=None, interactions="all", estimand_label=None,
-                 censoring_weights=None):
+                 censoring_weights=None, censoring_score=None):
     """Run IPW, AIPW and standardization on the same sample and estimand.
 
     Parameters
@@ -474,6 +475,9 @@ def cross_checks(y, t, X, *, estimand, alpha=0.05, outcome_type, measure="differ
     censoring_weights : array or None
         Inverse probabilities of an observed outcome for these rows
         (:func:`stratagap.data.observed_weights`); when given, one more IPW row uses them.
+    censoring_score : array or None
+        The exposure score for that row, fitted on every row with complete covariates (also
+        those whose outcome is missing); None uses this function's complete-case refit.
 
     Returns
     -------
@@ -502,7 +506,11 @@ def cross_checks(y, t, X, *, estimand, alpha=0.05, outcome_type, measure="differ
         cw = np.asarray(censoring_weights, dtype=float)
         if cw.shape != y.shape or not np.all(np.isfinite(cw) & (cw > 0)):
             raise InputError("`censoring_weights` must be positive, finite and one per row")
-        rows.append(_censoring_row(y, t, fit["score"], cw, measure, alpha, estimand, label))
+        e_all = fit["score"] if censoring_score is None else np.asarray(censoring_score, float)
+        note = ("exposure model fitted on every row with complete covariates" if censoring_score
+                is not None else "exposure model fitted on the complete cases (the all-rows fit "
+                "was not available)")
+        rows.append(_censoring_row(y, t, e_all, cw, measure, alpha, estimand, label, note))
     rows.append(_aipw_row(y, t, X, fit["score"], estimand, outcome_type, measure, alpha, label))
     rows.append(standardize(y, t, X, estimand=estimand, outcome_type=outcome_type, alpha=alpha,
                             measure=measure, interactions=interactions, estimand_label=label))
