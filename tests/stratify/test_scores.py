@@ -182,3 +182,39 @@ def test_bad_inputs():
     bad[3, 1] = np.nan
     with pytest.raises(InputError, match="smoker"):
         fit_propensity(bad, t, names)
+
+
+def test_tiny_scores_without_separation_keep_the_maximum_likelihood_fit():
+    """Units with truly tiny scores (a strong but overlapping confounder) are not separation:
+    the maximum-likelihood estimate exists (Albert & Anderson 1984, Biometrika 71:1-10), so
+    the scores are statsmodels' GLM fit, not a penalized refit."""
+    import statsmodels.api as sm
+
+    rng = np.random.default_rng(1)
+    x = rng.normal(size=3000)
+    t = (rng.random(3000) < 1 / (1 + np.exp(-(-3 + 14 * x)))).astype(np.int8)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", SeparationWarning)
+        fit = fit_propensity(x[:, None], t, ["x"])
+    ref = sm.GLM(t, sm.add_constant(x), family=sm.families.Binomial()).fit()
+    assert not fit.penalized and np.sum(fit.score < 1e-8) > 100
+    np.testing.assert_allclose(fit.score, ref.fittedvalues, rtol=1e-10, atol=1e-300)
+    assert any("linear program found no separation" in n for n in fit.notes)
+
+
+def test_linear_program_finds_quasi_complete_separation():
+    from stratagap._base.logistic import separates
+
+    x = np.arange(-5.0, 6.0)
+    Z = np.column_stack([np.ones(x.size), x])
+    assert separates(Z, (x >= 0).astype(float))        # complete
+    y = (x > 0).astype(float)
+    y[x == 0] = 1.0
+    y = np.append(y, 0.0)
+    Zq = np.vstack([Z, [1.0, 0.0]])                      # a tie at the threshold: quasi-complete
+    assert separates(Zq, y)
+    rng = np.random.default_rng(0)
+    y_overlap = (rng.random(x.size) < 0.5).astype(float)
+    y_overlap[[0, 1]] = [1.0, 0.0]
+    y_overlap[[-1, -2]] = [0.0, 1.0]
+    assert not separates(Z, y_overlap)

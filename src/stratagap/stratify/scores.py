@@ -18,7 +18,7 @@ from scipy.special import expit
 
 from ..errors import InputError, ModelWarning, SeparationWarning
 from .._base.linalg import pivoted_independent_columns
-from .._base.logistic import firth, fit_ml
+from .._base.logistic import firth, fit_ml, separates
 from .._base.rng import check_seed, substream
 
 __all__ = ["PropensityFit", "fit_propensity", "check_score"]
@@ -219,9 +219,11 @@ def _fit_logistic(X, t, names, seed):
     Xk, sdk, muk = X[:, keep], sd[keep], mu[keep]
     kept_names = [names[j] for j in keep]
 
-    fit = fit_ml(sm.add_constant(Xk, has_constant="add"), t.astype(float))
+    design = sm.add_constant(Xk, has_constant="add")
+    fit = fit_ml(design, t.astype(float))
     problems = list(fit.problems)
     big_coef = np.zeros(len(keep), dtype=bool)
+    near = 0
     if not fit.failed:
         params, bse, p = fit.params, fit.bse, fit.fitted
         near = int(np.sum((p < NEAR_BOUNDARY) | (p > 1 - NEAR_BOUNDARY)))
@@ -233,6 +235,15 @@ def _fit_logistic(X, t, names, seed):
             problems.append(f"{near} fitted probabilities within {NEAR_BOUNDARY:g} of 0 or 1 "
                             "with diverging coefficients")
 
+    # Fitted probabilities at 0 or 1 and large coefficients are signs, not proof: real data can
+    # have units whose scores are truly tiny. A converged fit with finite coefficients stands
+    # unless a linear program proves separation (Albert & Anderson 1984).
+    settled = not fit.failed and fit.converged and np.all(np.isfinite(fit.params))
+    if problems and settled and near and not separates(design, t):
+        notes.append(f"score model: {near} fitted probabilities within {NEAR_BOUNDARY:g} of 0 or 1; "
+                     "a linear program found no separation (Albert & Anderson 1984), so the "
+                     "maximum-likelihood fit stands")
+        problems = []
     if not problems:
         score = np.asarray(fit.fitted, dtype=float)
         coefs = _coef_dict(names, keep, [float(fit.params[0])] + list(fit.params[1:]), None)
