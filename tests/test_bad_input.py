@@ -693,3 +693,41 @@ def test_results_do_not_depend_on_thread_count(csv, tmp_path):
     a = _results_bytes(csv, tmp_path / "t1", env=envs[0], subprocess_run=True)
     b = _results_bytes(csv, tmp_path / "t2", env=envs[1], subprocess_run=True)
     assert a == b
+
+
+# ------------------------------------------------------------------ many-level categoricals
+def _many_levels(frame, n_levels=200, common=("A", "B", "C")):
+    """A text covariate with a few common levels and very many rare ones."""
+    rng = np.random.default_rng(5)
+    n = len(frame)
+    site = np.where(rng.random(n) < 0.6, rng.choice(list(common), n),
+                    [f"site{k:03d}" for k in rng.integers(0, n_levels, n)])
+    return frame.assign(site=site)
+
+
+def test_categorical_with_too_many_levels_is_refused(frame):
+    many = _many_levels(frame)
+    k = many["site"].nunique()
+    msg = input_error(many, r"`covariates` column 'site' has \d+ levels, more than",
+                      covariates=["age", "bmi", "site"])
+    assert f"has {k} levels" in msg and "`pool_rare_levels`" in msg
+
+
+def test_pooling_rare_levels_keeps_the_common_ones(frame):
+    many = _many_levels(frame)
+    res = run(many, covariates=["age", "bmi", "site"], pool_rare_levels=True)
+    assert warned(res, "DataWarning", "'site'", "pooled into one level")
+    names = res.to_dict()["covariates"]["design_columns"]
+    levels = {n.split(": ", 1)[1] for n in names if n.startswith("site: ")}
+    counts = many["site"].value_counts()
+    common = set(counts.index[counts >= 10])
+    # every common level but the reference keeps its own column; no rare level does
+    assert levels <= common | {"(rare levels pooled)"} and len(levels) >= len(common) - 1
+
+
+def test_too_many_levels_on_the_command_line(tmp_path, capsys, frame):
+    path = write_csv(tmp_path, _many_levels(frame))
+    argv = ["analyze", str(path), "--exposure", "grp", "--exposed-value", "night", "--outcome",
+            "y", "--covariates", "age,bmi,site", "--resamples", str(RESAMPLES), "--quiet"]
+    cli_error(capsys, argv, "'site'", "`--pool-rare-levels`")
+    assert main(argv + ["--pool-rare-levels"]) == 0

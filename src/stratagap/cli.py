@@ -65,7 +65,8 @@ _OPTIONS = [
 
 # Library messages name parameters (`covariates`, `trim=common`); the command line names flags.
 _FLAG_OF = {dest: flag for flag, dest, _typ, _text in _OPTIONS} | {
-    "censoring_weights": "--censoring-weights", "encoding": "--encoding", "out": "--out",
+    "censoring_weights": "--censoring-weights", "pool_rare_levels": "--pool-rare-levels",
+    "encoding": "--encoding", "out": "--out",
     "overwrite": "--overwrite", "spec": "--spec"}
 
 
@@ -93,6 +94,10 @@ def _build_parser() -> argparse.ArgumentParser:
     analyze.add_argument("--censoring-weights", dest="censoring_weights", action="store_const",
                          const=True, default=None,
                          help="weight complete cases by inverse probability of an observed outcome")
+    analyze.add_argument("--pool-rare-levels", dest="pool_rare_levels", action="store_const",
+                         const=True, default=None,
+                         help="pool levels of a categorical covariate with fewer than 10 rows "
+                              "into one level (needed when a covariate has very many levels)")
     _add_output_options(analyze)
     demo = sub.add_parser("demo", help="simulate the invented shift-work study and analyse it")
     demo.add_argument("--seed", default="2026", help="seed of the simulated data and the analysis")
@@ -139,6 +144,8 @@ def _spec_options(args) -> dict:
             options[dest] = value
     if args.censoring_weights:
         options["censoring_weights"] = True
+    if args.pool_rare_levels:
+        options["pool_rare_levels"] = True
     if args.data:
         options["data_path"] = args.data
     for flag, dest in (("--exposure", "exposure"), ("--outcome", "outcome")):

@@ -98,7 +98,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
         exposed_value=spec.exposed_value, outcome_type=spec.outcome_type,
         outcome_event=spec.outcome_event, formula=spec.formula, missing=spec.missing,
         strata_column=spec.strata_column, negative_control=spec.negative_control,
-        censoring_weights=spec.censoring_weights)
+        censoring_weights=spec.censoring_weights, pool_rare_levels=spec.pool_rare_levels)
     clock.lap("data")
     binary = prepared.outcome_type == "binary"
     if spec.measure != "difference" and not binary:

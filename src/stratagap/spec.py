@@ -72,6 +72,7 @@ class AnalysisSpec:
     gamma_grid: tuple[float, ...] = (1.0, 1.1, 1.25, 1.5, 1.75, 2.0, 2.5, 3.0, 4.0, 5.0)
     missing: str = "drop"
     censoring_weights: bool = False
+    pool_rare_levels: bool = False
     negative_control: str | None = None
     truncate_weights: tuple[float, float] | None = None
     interaction_min_extra: int = 2

@@ -130,6 +130,11 @@ def _python_names(expr: str) -> list:
     return quoted + names
 
 
+def identifier_levels(k: int, n: int) -> bool:
+    """A text column with this many distinct values in ``n`` rows is an identifier, not a factor."""
+    return n >= 3 and (k == n or (k > 50 and k > 0.5 * n))
+
+
 def is_categorical(s: pd.Series) -> bool:
     return pd.api.types.is_bool_dtype(s) or not pd.api.types.is_numeric_dtype(s)
 
@@ -175,8 +180,7 @@ def build(frame: pd.DataFrame, covariates, formula, t) -> Design:
         if k == 2 and len(set(zip(pd.factorize(s)[0].tolist(), np.asarray(t).tolist()))) == 2:
             raise InputError(f"`covariates` column '{c}' is the exposure recoded (its two values match the groups "
                              "exactly); remove it from the covariates")
-        if (is_categorical(s) and not pd.api.types.is_bool_dtype(s) and n >= 3
-                and (k == n or (k > 50 and k > 0.5 * n))):
+        if is_categorical(s) and not pd.api.types.is_bool_dtype(s) and identifier_levels(k, n):
             raise InputError(f"`covariates` column '{c}' looks like an identifier ({k} distinct values in {n} rows); "
                              "remove it from the covariates (or group it into a few categories)")
         why = _identifier_reason(c, s, frame.get("__row__"))

@@ -29,6 +29,7 @@ from ..errors import DataWarning, InputError, MissingDataWarning
 from ._readers import read_table
 from . import _coding
 from . import _covariates as _design
+from . import _levels
 
 __all__ = ["read_table", "prepare", "observed_weights", "PreparedData", "BalanceTerm", "Flow"]
 
@@ -126,7 +127,7 @@ class PreparedData:
 
 def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome_type="auto",
             formula=None, missing="drop", strata_column=None, negative_control=None,
-            outcome_event=None, censoring_weights=False) -> PreparedData:
+            outcome_event=None, censoring_weights=False, pool_rare_levels=False) -> PreparedData:
     """Check and code the analysed columns of ``table``.
 
     Parameters
@@ -157,6 +158,9 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
         For a binary outcome whose two values are not 0/1 or True/False: the event value.
     censoring_weights : bool
         Also compute inverse-probability-of-censoring weights for the analysed rows.
+    pool_rare_levels : bool
+        Pool the levels of a categorical covariate with fewer than 10 rows into one level;
+        without it a covariate with too many levels is refused (:mod:`._levels`).
 
     Returns
     -------
@@ -240,6 +244,9 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     order = _coding.canonical_order(cand, ["__t__", *cols])
     cand = cand.iloc[order].reset_index(drop=True)
     filled, formula_used = _design.fill_missing(cand, covariates, formula, missing)
+    filled = _levels.check_levels(filled, covariates, pool=pool_rare_levels,
+                                  is_categorical=_design.is_categorical,
+                                  identifier_levels=_design.identifier_levels)
     keep = cand[outcome].notna().to_numpy()
 
     cw = cs = None
