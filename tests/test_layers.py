@@ -32,9 +32,12 @@ LAYERS = [
     ("cli", "demo", "__main__", ""),
 ]
 
-ALLOWED_UPWARD = {  # result.tables and result._repr_html_ render the result they belong to
+ALLOWED_UPWARD = {  # the result's notebook conveniences render the result they belong to:
+    # tables, _repr_html_ and figures (render.notebook), summary(), save() (render.files)
     ("stratagap.result", "stratagap.render.tables"),
-    ("stratagap.result", "stratagap.render.report"),
+    ("stratagap.result", "stratagap.render.notebook"),
+    ("stratagap.result", "stratagap.render.summary"),
+    ("stratagap.result", "stratagap.render.files"),
 }
 
 

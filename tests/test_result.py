@@ -123,3 +123,39 @@ def test_heterogeneity_block_is_cochran_q_of_the_usable_rows():
     e = np.array([1.0, 3.0])
     pooled = (w * e).sum() / w.sum()
     assert abs(h.cochran_q.statistic - (w * (e - pooled) ** 2).sum()) < 1e-12
+
+
+def test_notebook_conveniences(tmp_path):
+    """summary(), save(), figures, a short repr, a light _repr_html_, warnings raised."""
+    import warnings as _w
+
+    import matplotlib.figure
+    import stratagap
+    from stratagap.demo import make_shift_work_data
+    from stratagap.errors import StratagapWarning
+    from stratagap.render.summary import render_summary
+
+    data = make_shift_work_data(n=800, seed=4).drop(columns=["_true_effect"])
+    data.loc[:30, "bmi"] = float("nan")
+    with _w.catch_warnings(record=True) as caught:
+        _w.simplefilter("always")
+        res = stratagap.analyze(data, exposure="shift", exposed_value="nights",
+                                outcome="systolic_bp", covariates=["age", "bmi", "role"],
+                                missing="indicator", resamples=199, seed=1)
+    raised = {(w.category.__name__, str(w.message)) for w in caught
+              if issubclass(w.category, StratagapWarning)}
+    recorded = {(w["kind"], w["message"]) for w in res.to_dict()["warnings"]}
+    assert recorded and recorded == raised
+    assert res.summary() == render_summary(res.to_dict())
+    written = res.save(tmp_path / "out")
+    assert {p.name for p in written} >= {"results.json", "run.json", "balance.csv", "strata.csv",
+                                         "report.html"}
+    assert (tmp_path / "out" / "results.json").read_text() == res.to_json()
+    figs = res.figures
+    assert set(figs) >= {"balance", "gamma_curve", "overlap"}
+    assert all(isinstance(f, matplotlib.figure.Figure) for f in figs.values())
+    text = repr(res)
+    assert text.startswith("<AnalysisResult systolic_bp by shift:") and len(text) < 200
+    page = res._repr_html_()
+    assert res.to_dict()["verdict"][:40] in page.replace("&#x27;", "'")
+    assert page.count("<img") == 2 and len(page) < 150_000

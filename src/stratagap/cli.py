@@ -156,6 +156,21 @@ def _spec_options(args) -> dict:
     return options
 
 
+def _warnings_in_summary_only():
+    """The analysis's warnings are printed in the summary; Python's own display is silenced."""
+    import contextlib
+    import warnings
+
+    from .errors import StratagapWarning
+
+    @contextlib.contextmanager
+    def quiet():
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", StratagapWarning)
+            yield
+    return quiet()
+
+
 def _check_format(fmt):
     if fmt not in ("text", "json"):
         raise InputError(f"`--format` must be text or json; got {fmt!r}")
@@ -175,10 +190,12 @@ def _run_analyze(args) -> int:
     progress, bar = _progress(args.quiet)
     source = {"file": path.name, "sha256": _sha256(path), "rows": int(len(table))}
     try:
-        result = analyze(table, progress=progress, source=source, command=args.command_line,
-                         exposure=options.pop("exposure"), outcome=options.pop("outcome"),
-                         covariates=options.pop("covariates", None), data_path=str(path),
-                         **options)
+        with _warnings_in_summary_only():
+            result = analyze(table, progress=progress, source=source,
+                             command=args.command_line, exposure=options.pop("exposure"),
+                             outcome=options.pop("outcome"),
+                             covariates=options.pop("covariates", None), data_path=str(path),
+                             **options)
     finally:
         if bar is not None:
             bar.close()
@@ -211,10 +228,11 @@ def _run_demo(args) -> int:
     source = {"file": csv_path.name, "sha256": _sha256(csv_path), "rows": int(len(public)),
               "invented": True}
     try:
-        result = analyze(public, exposure="shift", exposed_value="nights", outcome="systolic_bp",
-                         covariates=list(DEMO_COVARIATES),
-                         negative_control="hearing_db", seed=seed, progress=progress,
-                         source=source, command=args.command_line)
+        with _warnings_in_summary_only():
+            result = analyze(public, exposure="shift", exposed_value="nights",
+                             outcome="systolic_bp", covariates=list(DEMO_COVARIATES),
+                             negative_control="hearing_db", seed=seed, progress=progress,
+                             source=source, command=args.command_line)
     finally:
         if bar is not None:
             bar.close()

@@ -84,6 +84,8 @@ def analyze(table, *, exposure: str, outcome: str, covariates=None, progress=Non
         if key not in seen:
             seen.add(key)
             recorded.append({"kind": w.category.__name__, "message": str(w.message)})
+            # recorded in the result, and raised again for whoever called analyze (notebooks)
+            warnings.warn(str(w.message), w.category, stacklevel=2)
     clock.lap("result")
     run = {"seconds": round(time.perf_counter() - started, 3), "versions": versions(),
            "command": command, "stages": clock.to_dict()}

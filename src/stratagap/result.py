@@ -179,9 +179,31 @@ class AnalysisResult:
         from .render.tables import ResultTables
         return ResultTables(self)
 
-    def _repr_html_(self) -> str:  # notebooks
-        from .render.report import render_html
-        return render_html(self, compact=True)
+    def _repr_html_(self) -> str:  # notebooks: the verdict, the estimates and two figures
+        from .render.notebook import notebook_html
+        return notebook_html(self)
+
+    def __repr__(self) -> str:
+        a = self.adjusted
+        return (f"<AnalysisResult {self.spec.outcome} by {self.spec.exposure}: "
+                f"{a.measure} {a.estimate:.4g} ({a.ci_low:.4g} to {a.ci_high:.4g}), "
+                f"p = {self.tests.main.p_value:.3g}, n = {self.n_used}>")
+
+    def summary(self) -> str:
+        """The plain-text summary the command line prints."""
+        from .render.summary import render_summary
+        return render_summary(self.to_dict())
+
+    def save(self, folder, *, overwrite: bool = False, report: bool = True) -> list:
+        """Write what the command line's ``--out`` writes into ``folder``; returns the paths."""
+        from .render.files import prepare_folder, write_result
+        return write_result(self, prepare_folder(folder, overwrite=overwrite), report=report)
+
+    @property
+    def figures(self) -> dict:
+        """The report's figures as matplotlib Figures, by name (drawn on each access)."""
+        from .render.notebook import figures
+        return figures(self)
 
     # -- JSON --------------------------------------------------------------------------
     def to_dict(self) -> dict:

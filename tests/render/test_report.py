@@ -569,12 +569,15 @@ def test_reproducibility_spec_reads_back(demo_result, report_folder, tmp_path):
     assert "stratagap demo" in text and "numpy" in text
 
 
-def test_notebook_view_and_tables(demo_result):
-    html = demo_result._repr_html_()
-    tree = parse(html)
+def test_compact_fragment_and_notebook_view(demo_result):
+    # the compact fragment: every section and figure, no document wrapper
+    tree = parse(render_html(demo_result, compact=True))
     assert [a["data-section"] for a in tree.find("section")] == SECTIONS
     assert len(tree.find("img")) == len(FIGURES)
     assert not tree.find("html")
+    # a notebook cell shows a light view instead: the verdict, the estimates, two figures
+    light = parse(demo_result._repr_html_())
+    assert not light.find("section") and len(light.find("img")) == 2 and not light.find("html")
 
 
 def test_escaping_with_real_column_names_and_levels(tmp_path):
