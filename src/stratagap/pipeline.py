@@ -106,7 +106,8 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
     if spec.measure != "difference" and not binary:
         raise InputError(f"`measure={spec.measure}` needs a binary outcome; "
                          f"{spec.outcome!r} is continuous: use `measure=difference`")
-    crude = _effects.crude(prepared.y, prepared.t, prepared.outcome_type, alpha=spec.alpha)
+    crude = _effects.crude(prepared.y, prepared.t, prepared.outcome_type, alpha=spec.alpha,
+                           measure=spec.measure if prepared.outcome_type == "binary" else "difference")
     clock.lap("effects")
 
     propensity = _scores.fit_propensity(prepared.X, prepared.t, prepared.design_names,
@@ -166,7 +167,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
     clock.lap("effects")
 
     cross = _crosscheck.cross_checks(y, t, X, estimand=spec.estimand, alpha=spec.alpha,
-                                     outcome_type=prepared.outcome_type,
+                                     outcome_type=prepared.outcome_type, measure=spec.measure,
                                      truncate=spec.truncate_weights,
                                      score=propensity.score[used], estimand_label=population,
                                      censoring_weights=None if prepared.censoring_weights is None
@@ -187,7 +188,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
         statistic="sum" if spec.statistic == "sum" else "mean_difference",
         estimand=spec.estimand, alternative=spec.alternative, alpha=spec.alpha,
         gammas=spec.gamma_grid, adjusted=adjusted, risk_ratio=risk_ratio, binary=binary,
-        seed=spec.seed)
+        seed=spec.seed, measure=spec.measure)
     clock.lap("sensitivity")
     negative = None if prepared.negative_control is None else _sensitivity.negative_control_check(
         prepared.negative_control[used], t, X, labels, column=spec.negative_control,

@@ -56,7 +56,7 @@ def _label(estimand, population):
 
 
 # --------------------------------------------------------------------------- crude
-def crude(y, t, outcome_type, *, alpha=0.05) -> Estimate:
+def crude(y, t, outcome_type, *, alpha=0.05, measure="difference") -> Estimate:
     """Unadjusted difference between the groups, on all complete-case rows before trimming.
 
     Parameters
@@ -68,18 +68,26 @@ def crude(y, t, outcome_type, *, alpha=0.05) -> Estimate:
     outcome_type : {"continuous", "binary"}
     alpha : float, default 0.05
         The CI has level ``1 - alpha``.
+    measure : {"difference", "rr", "or"}, default "difference"
+        Binary outcomes: the scale of the comparison, the headline's own.
 
     Returns
     -------
     Estimate
         Continuous: difference of means with the Welch SE and the Welch-Satterthwaite t
         interval (Welch 1947). Binary: risk difference with the Wald SE
-        ``sqrt(p1 q1 / n1 + p0 q0 / n0)`` and a normal interval.
+        ``sqrt(p1 q1 / n1 + p0 q0 / n0)`` and a normal interval; risk ratio with the log-scale
+        SE ``sqrt(q1 / (n1 p1) + q0 / (n0 p0))`` (Katz et al. 1978); odds ratio with Woolf's
+        log-scale SE ``sqrt(1/a + 1/b + 1/c + 1/d)`` (Woolf 1955).
 
     References
     ----------
     Welch, B. L. (1947). The generalization of 'Student's' problem when several different
     population variances are involved. Biometrika 34, 28-35.
+    Katz, D., Baptista, J., Azen, S. P. & Pike, M. C. (1978). Obtaining confidence intervals for
+    the risk ratio in cohort studies. Biometrics 34, 469-474.
+    Woolf, B. (1955). On estimating the relation between blood group and disease. Annals of
+    Human Genetics 19, 251-253.
     """
     alpha = _check_alpha(alpha)
     y, t = _check_yt(y, t)
@@ -97,6 +105,8 @@ def crude(y, t, outcome_type, *, alpha=0.05) -> Estimate:
         q = stats.t.ppf(1 - alpha / 2, df)  # Welch-Satterthwaite degrees of freedom
         lo, hi = est - q * se, est + q * se
         measure, method = "mean difference", "Welch two-sample interval"
+    elif measure in ("rr", "or"):
+        return _crude_ratio(y1, y0, measure, alpha)
     else:
         p1, p0 = y1.mean(), y0.mean()
         se = math.sqrt(p1 * (1 - p1) / n1 + p0 * (1 - p0) / n0)  # Wald
@@ -106,6 +116,30 @@ def crude(y, t, outcome_type, *, alpha=0.05) -> Estimate:
                     "crude (unadjusted)", f"all complete-case rows before trimming (n = {n1 + n0})",
                     f"crude (unadjusted), all complete-case rows before trimming; {method}",
                     alpha)
+
+
+def _crude_ratio(y1, y0, measure, alpha) -> Estimate:
+    """Crude risk or odds ratio with its log-scale interval; nan when a cell is empty."""
+    a, n1 = float(y1.sum()), len(y1)
+    c, n0 = float(y0.sum()), len(y0)
+    b, d = n1 - a, n0 - c
+    population = f"all complete-case rows before trimming (n = {n1 + n0})"
+    if measure == "rr":
+        name, method = "risk ratio", "log-scale interval (Katz et al. 1978)"
+        ok = a > 0 and c > 0
+        est = (a / n1) / (c / n0) if ok else math.nan
+        se = math.sqrt(b / (a * n1) + d / (c * n0)) if ok else math.nan  # Katz et al. 1978
+    else:
+        name, method = "odds ratio", "log-scale interval (Woolf 1955)"
+        ok = min(a, b, c, d) > 0
+        est = (a * d) / (b * c) if ok else math.nan
+        se = math.sqrt(1 / a + 1 / b + 1 / c + 1 / d) if ok else math.nan  # Woolf 1955
+    z = float(stats.norm.ppf(1 - alpha / 2))
+    lo, hi = (math.exp(math.log(est) - z * se), math.exp(math.log(est) + z * se)) if ok \
+        else (math.nan, math.nan)
+    return Estimate(float(est), float(se), float(lo), float(hi), name, "crude (unadjusted)",
+                    population, f"crude (unadjusted), all complete-case rows before trimming; {method}",
+                    alpha, scale="log")
 
 
 # --------------------------------------------------------------------------- headline

@@ -51,7 +51,8 @@ class Sensitivity:
 
 def sensitivity_analysis(values, t, labels, X, y, terms, *, test, statistic: str,
                          estimand: str, alternative: str, alpha: float, gammas, adjusted,
-                         risk_ratio, binary: bool, seed: int = 0) -> Sensitivity:
+                         risk_ratio, binary: bool, seed: int = 0,
+                         measure: str = "difference") -> Sensitivity:
     """Every sensitivity view of one analysis.
 
     Parameters
@@ -74,6 +75,10 @@ def sensitivity_analysis(values, t, labels, X, y, terms, *, test, statistic: str
         The headline estimate and (binary outcomes) the standardized risk ratio.
     binary : bool
         Whether the outcome is binary (picks the E-value's scale).
+    measure : {"difference", "rr", "or"}
+        The headline's scale. The tipping grid is on the difference scale for a difference and
+        on the ratio scale otherwise (Lin, Psaty & Kronmal 1998 give the ratio form for risk
+        ratios; an odds-ratio headline is bounded through its standardized risk ratio).
     seed : int
         Seed of the Monte Carlo estimates at the selected allocation (Gammas where the normal
         bracket straddles the level).
@@ -95,9 +100,12 @@ def sensitivity_analysis(values, t, labels, X, y, terms, *, test, statistic: str
                                   direction=direction, alpha=alpha,
                                   two_sided=alternative == "two-sided", p_at_one=p_at_one)
     e_value = headline_e_value(adjusted, risk_ratio, y, t, binary=binary, alpha=alpha)
-    benchmarks = covariate_benchmarks(terms, X, y, t)
-    tipping = tipping_grid(adjusted.estimate, adjusted.ci_low, adjusted.ci_high,
-                           measure="difference", benchmarks=benchmarks)
+    scale = "difference" if measure == "difference" else "rr"
+    ratio = adjusted if measure == "rr" else risk_ratio
+    on = adjusted if scale == "difference" else ratio
+    benchmarks = covariate_benchmarks(terms, X, y, t, measure=scale)
+    tipping = tipping_grid(on.estimate, on.ci_low, on.ci_high, measure=scale,
+                           benchmarks=benchmarks)
     return Sensitivity(e_value=e_value, gamma_threshold_detail=threshold,
                        gamma_level=threshold.alpha, gamma_direction=direction,
                        gamma_bounds=bounds, tipping=tipping)
