@@ -174,6 +174,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
                                      else prepared.censoring_weights[used],
                                      censoring_score=None if prepared.censoring_score is None
                                      else prepared.censoring_score[used])
+    cross = _crosscheck.compare_with_headline(cross, adjusted)
     if prepared.censoring_weights is not None:
         warnings.warn("Censoring weights enter the cross-check row 'IPW x censoring weights'; the "
                       "stratified headline and the permutation test use the complete cases "

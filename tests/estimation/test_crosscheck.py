@@ -385,3 +385,29 @@ def test_no_events_in_a_group_warns_and_leaves_ratios_undefined():
     d = res.to_dict()
     assert all(r["estimate"] is None and r["ci_low"] is None for r in d["rows"])
     assert "undefined" in d["rows"][0]["notes"][-1]
+
+
+def test_gap_from_the_headline_in_combined_se_units():
+    """Closed form: z = (c - h) / sqrt(se_c^2 + se_h^2), on the log scale for ratios."""
+    from types import SimpleNamespace
+    from stratagap.estimation.crosscheck import (CrossCheckResult, CrossCheckRow,
+                                                 compare_with_headline)
+
+    def row(est, se, measure):
+        return CrossCheckRow(method="m", estimate=est, se=se, ci_low=est, ci_high=est,
+                             measure=measure, se_scale="x", estimand="ATE", estimand_kind="marginal",
+                             population="p", mu1=0.0, mu0=0.0, se_method="s")
+
+    res = CrossCheckResult(rows=(row(3.0, 0.3, "difference"), row(1.2, 0.4, "difference")),
+                           weights=None, estimand="ate", measure="difference",
+                           outcome_type="continuous", alpha=0.05, score_source="s")
+    head = SimpleNamespace(estimate=2.0, se=0.4, scale="identity")
+    out = compare_with_headline(res, head)
+    assert out.rows[0].headline_gap_z == pytest.approx(1.0 / 0.5)
+    assert out.rows[0].differs_from_headline is True
+    assert out.rows[1].headline_gap_z == pytest.approx(-0.8 / math.sqrt(0.32))
+    assert out.rows[1].differs_from_headline is False
+    ratio = CrossCheckResult(rows=(row(2.0, 0.2, "rr"),), weights=None, estimand="ate",
+                             measure="rr", outcome_type="binary", alpha=0.05, score_source="s")
+    out = compare_with_headline(ratio, SimpleNamespace(estimate=1.0, se=0.1, scale="log"))
+    assert out.rows[0].headline_gap_z == pytest.approx(math.log(2.0) / math.sqrt(0.05))

@@ -41,7 +41,7 @@ from __future__ import annotations
 
 import functools
 import math
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 from scipy import stats
@@ -54,6 +54,7 @@ from .._base.jsonable import jsonable
 
 __all__ = [
     "cross_checks",
+    "compare_with_headline",
     "ipw",
     "aipw",
     "standardize",
@@ -118,9 +119,38 @@ class CrossCheckRow:
     se_method: str
     notes: tuple = ()
     details: dict = field(default_factory=dict)
+    headline_gap_z: float | None = None      # (this - headline) / sqrt(SE^2 + SE_headline^2)
+    differs_from_headline: bool | None = None  # |headline_gap_z| > 1.96
 
     def to_dict(self) -> dict:
         return jsonable(asdict(self))
+
+
+#: |z| beyond which a cross-check is said to differ from the headline. The two estimates are
+#: positively correlated (same data), so sqrt(SE^2 + SE_h^2) overstates the SE of their gap and
+#: the rule under-flags: a flagged gap is a real disagreement, an unflagged one is not proof of
+#: agreement.
+DIFFERS_Z = 1.96
+
+
+def compare_with_headline(result: "CrossCheckResult", headline) -> "CrossCheckResult":
+    """The cross-checks with each row's gap from the headline in units of their combined SE.
+
+    ``headline`` is an :class:`~stratagap.estimation.Estimate` on the same measure; ratios are
+    compared on the log scale, where both SEs live.
+    """
+    ratio = headline.scale == "log"
+    h = math.log(headline.estimate) if ratio and headline.estimate > 0 else headline.estimate
+    rows = []
+    for r in result.rows:
+        z = None
+        if r.measure == result.measure and all(map(math.isfinite, (r.estimate, r.se, headline.se))):
+            c = math.log(r.estimate) if ratio and r.estimate > 0 else r.estimate
+            spread = math.sqrt(r.se ** 2 + headline.se ** 2)
+            z = (c - h) / spread if spread > 0 else None
+        rows.append(replace(r, headline_gap_z=z,
+                            differs_from_headline=None if z is None else abs(z) > DIFFERS_Z))
+    return replace(result, rows=tuple(rows))
 
 
 @dataclass(frozen=True)
