@@ -107,3 +107,25 @@ def test_warnings_in_the_printed_summary_name_flags(tmp_path, capsys):
     out = capsys.readouterr().out
     assert code == 0
     assert "`--missing indicator`" in out and "`missing=indicator`" not in out
+
+
+def test_a_misspelt_flag_gets_a_suggestion(capsys):
+    from stratagap.cli import main
+    assert main(["analyze", "x.csv", "--exposed_value", "1"]) == 2
+    err = capsys.readouterr().err
+    assert "did you mean --exposed-value?" in err and err.count("\n") == 1
+
+
+def test_one_stratum_is_said_to_be_no_subclassification():
+    import warnings
+    import numpy as np
+    from stratagap.errors import StrataWarning
+    from stratagap.stratify.strata import make_strata
+    rng = np.random.default_rng(0)
+    score = rng.random(200)
+    t = (rng.random(200) < score).astype(np.int8)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        make_strata(score, t, estimand="ate", n_strata=1)
+    assert any(issubclass(w.category, StrataWarning) and "no subclassification" in str(w.message)
+               for w in caught)

@@ -26,8 +26,22 @@ DEMO_FOLDER = "stratagap-demo"
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message):  # one line, exit code 2, through the same path as other errors
-        raise InputError(f"{message}; see `stratagap {self.prog.split()[-1]} --help`"
-                         if " " in self.prog else f"{message}; see `stratagap --help`")
+        hint = _flag_hint(message)
+        raise InputError(f"{message}{hint}; see `stratagap {self.prog.split()[-1]} --help`"
+                         if " " in self.prog else f"{message}{hint}; see `stratagap --help`")
+
+
+def _flag_hint(message: str) -> str:
+    """' (did you mean --exposed-value?)' for an unknown flag close to a known one."""
+    import difflib
+
+    match = re.search(r"unrecognized arguments: (--?[\w-]+)", message)
+    if not match:
+        return ""
+    given = match.group(1)
+    flags = sorted(set(_FLAG_OF.values()) | {"--format", "--quiet", "--n", "--seed"})
+    close = difflib.get_close_matches(given.replace("_", "-"), flags, n=1, cutoff=0.75)
+    return f" (did you mean {close[0]}?)" if close else ""
 
 
 # (flag, spec field, type, help). Defaults live in AnalysisSpec only, so there is one source.

@@ -164,8 +164,13 @@ def make_strata(score, t, *, estimand, n_strata=5, method="quantile", min_per_gr
     if n_strata > supported:
         raise InputError(
             f"`n_strata={n_strata}` is more than the data support: {n1} exposed and {n0} "
-            f"reference units allow at most {supported} strata (at least {min_per_group} units "
+            f"reference units allow at most {supported} {'stratum' if supported == 1 else 'strata'} "
+            f"(at least {min_per_group} units "
             f"of each group per stratum, 2 at the very least); use `n_strata={supported}` or fewer")
+    if n_strata == 1:
+        warnings.warn("`n_strata=1`: one stratum, so there is no subclassification on the score; "
+                      "the comparison rests on the covariance adjustment alone", StrataWarning,
+                      stacklevel=2)
     return _quantile(score, t, estimand, n_strata, min_per_group)
 
 
