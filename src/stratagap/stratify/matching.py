@@ -36,7 +36,7 @@ Aerospace and Electronic Systems 52:1679-1696 (the solver behind scipy's routine
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy import sparse
@@ -44,6 +44,8 @@ from scipy.sparse.csgraph import min_weight_full_bipartite_matching
 
 from .._base.jsonable import fields_dict
 from ..errors import InputError
+from .balance import balance_table
+from .strata import Strata
 
 __all__ = ["Matching", "match_on_score", "DEFAULT_CALIPER_SD", "DEFAULT_PER_EXPOSED",
            "NEAREST_PER_SLOT"]
@@ -293,6 +295,9 @@ def _match_group(logit, e, r, K, C, sd, width, nearest):
     keep = np.flatnonzero(has)
     renum = np.full(e.size, -1)
     renum[keep] = np.arange(keep.size)
+    # only reference units with an edge enter the graph (the solver's work grows with columns)
+    used, cols = np.unique(cols, return_inverse=True)
+    r = r[used]
     m, nr = keep.size, r.size
     N = m * K
     scaled = dist / sd if sd > 0 else np.zeros_like(dist)
@@ -309,3 +314,107 @@ def _match_group(logit, e, r, K, C, sd, width, nearest):
     real = np.flatnonzero(assigned < nr)
     pairs = list(zip(e[keep[real % m]].tolist(), r[assigned[real]].tolist()))
     return pairs, int(slot_w.size), int(N), lonely
+
+
+# ----------------------------------------------------------------------------- the study design
+def matched_design(score, logit, t, keep, *, table, row_ids, per_exposed, caliper_sd,
+                   same_value_on):
+    """Matched sets of the rows kept by the overlap rule, as the strata of the analysis.
+
+    Parameters
+    ----------
+    score, logit, t : arrays (n,)
+        Score, its logit and the exposure of the prepared rows.
+    keep : bool array (n,)
+        Rows kept by the overlap rule; the matching uses only these.
+    table, row_ids
+        The input table and the prepared rows' positions in it (for ``same_value_on``).
+    per_exposed, caliper_sd, same_value_on
+        As in :class:`stratagap.spec.AnalysisSpec`.
+
+    Returns
+    -------
+    (Matching, Strata)
+        ``Strata.labels`` are the matched sets of the kept rows (``-1``: not matched), method
+        ``"matched"``, weights of the effect in the matched exposed units (each set 1 / M).
+    """
+    same = None
+    cols = list(same_value_on or ())
+    if cols:
+        missing = [c for c in cols if c not in table.columns]
+        if missing:
+            raise InputError(f"`same_value_on` names {', '.join(map(repr, missing))}, not a "
+                             f"column of the data; columns include "
+                             f"{', '.join(map(str, list(table.columns)[:8]))}")
+        rows = table.iloc[np.asarray(row_ids)[keep]]
+        # missing values: a value of their own (code -1)
+        same = np.column_stack([rows[c].factorize()[0] for c in cols])
+    t_kept = np.asarray(t)[keep]
+    m = match_on_score(np.asarray(logit)[keep], t_kept, per_exposed=per_exposed,
+                       caliper_sd=caliper_sd, same_value=same, same_value_on=cols)
+    if m.matched_exposed == 0:
+        raise InputError(f"`caliper_sd={caliper_sd:g}`: no exposed unit has a reference unit "
+                         "within the caliper (or with the same `same_value_on` values); widen "
+                         "the caliper or use `design=strata`")
+    labels = m.labels
+    table_rows = _set_table(np.asarray(score)[keep], t_kept, labels, m.n_sets)
+    set_aside = {"exposed": int(m.n_exposed - m.matched_exposed),
+                 "reference": int(m.n_reference - m.reference_used)}
+    settings = {"per_exposed": m.per_exposed, "caliper_sd": m.caliper_sd,
+                "same_value_on": list(cols), "merging": "none (matched sets kept as built)"}
+    strata = Strata(labels=labels, n_strata=m.n_sets, table=table_rows, merges=[],
+                    method="matched", settings=settings, set_aside=set_aside, estimand="att",
+                    notes=[f"{m.matched_exposed} of {m.n_exposed} exposed units matched; the "
+                           "estimand is the effect in the matched exposed units"])
+    return m, strata
+
+
+def _set_table(score, t, labels, n_sets):
+    """One row per matched set (vectorized: sets can number in the hundreds of thousands)."""
+    ok = labels >= 0
+    lab, sc, tt = labels[ok], score[ok], t[ok]
+    n = np.bincount(lab, minlength=n_sets)
+    n1 = np.bincount(lab, weights=tt, minlength=n_sets).astype(int)
+    lo = np.full(n_sets, np.inf)
+    hi = np.full(n_sets, -np.inf)
+    np.minimum.at(lo, lab, sc)
+    np.maximum.at(hi, lab, sc)
+    w = 1.0 / n_sets  # ATT weights n1_s / n1 with one exposed unit per set
+    return [{"stratum": s, "score_low": float(lo[s]), "score_high": float(hi[s]),
+             "n_exposed": int(n1[s]), "n_reference": int(n[s] - n1[s]), "n": int(n[s]),
+             "weight": w} for s in range(n_sets)]
+
+
+def matched_sets_rows(matching: Matching, t, row_ids, keep) -> dict:
+    """Columns of the matched-set file, one row per matched unit, by set, exposed unit first:
+    set, row (0-based row of the input file), group, logit_gap (0 for the exposed unit)."""
+    kept = np.flatnonzero(keep)
+    ok = np.flatnonzero(matching.labels >= 0)
+    exposed = np.asarray(t)[kept][ok] == 1
+    rows = np.asarray(row_ids)[kept][ok]
+    order = np.lexsort((rows, ~exposed, matching.labels[ok]))
+    return {"set": matching.labels[ok][order], "row": rows[order],
+            "group": np.where(exposed[order], "exposed", "reference"),
+            "logit_gap": matching.gap[ok][order]}
+
+
+def population_label(base: str, matching: Matching) -> str:
+    """The estimand's label with a matched design: the effect in the matched exposed units."""
+    who = (f"the {matching.matched_exposed:,} matched exposed units (of "
+           f"{matching.n_exposed:,} exposed offered to the matching)")
+    return f"effect in {who}" if base == "ATT" else f"{base}, restricted to {who}"
+
+
+def matched_balance(prepared, keep, used, weights, logit):
+    """Balance before matching (every unit offered to it) and after (the matched sample).
+
+    ``weights`` are the unit weights of the analysed rows ``used`` (matched units); units left
+    out of the sets weigh 0 after matching.
+    """
+    kept = np.flatnonzero(keep)
+    after = np.zeros(kept.size)
+    after[np.searchsorted(kept, used)] = weights
+    terms = [replace(term, values=None if term.values is None else term.values[kept])
+             for term in prepared.terms]
+    return balance_table(prepared.X[kept], prepared.t[kept], terms, weights_after=after,
+                         logit=np.asarray(logit)[kept])
