@@ -137,3 +137,19 @@ def test_cli_bad_caliper_is_one_line(tmp_path, capsys):
     err = capsys.readouterr().err
     assert code == 2 and "`--caliper-sd` must be a positive number" in err
     assert len(err.strip().splitlines()) == 1
+
+
+def test_matching_fields_are_documented(matched):
+    # the field-name check of tests/test_results_doc.py, on a matched design
+    import re
+    from pathlib import Path
+    sys_path = Path(__file__).resolve().parents[1]
+    import importlib.util
+    spec = importlib.util.spec_from_file_location("results_doc", sys_path / "test_results_doc.py")
+    doc = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(doc)
+    documented = set(re.findall(r"`([^`]+)`", doc.DOC.read_text(encoding="utf-8")))
+    # keys that are numbers (k of matches_per_exposed, Gamma of mc_se) are data, not field names
+    missing = sorted(n for n in set(doc._names(matched.to_dict()))
+                     if n not in documented and not re.fullmatch(r"[0-9.]+", n))
+    assert not missing, f"document these results.json fields in docs/results.md: {missing}"
