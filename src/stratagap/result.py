@@ -91,8 +91,9 @@ class ParticipantFlow:
     """The ``flow`` block: row counts from the file to the analysed rows.
 
     The first nine fields are the data stage's counts
-    (:class:`stratagap.data.Flow`, already JSON-ready); the last four come from the overlap
-    rule, the strata and the analysed rows. Built once, by :meth:`from_stages`.
+    (:class:`stratagap.data.Flow`, already JSON-ready); the next four come from the overlap
+    rule, the strata and the analysed rows, and ``not_matched_by_group`` (present with
+    ``design=match`` only) from the matching. Built once, by :meth:`from_stages`.
     """
 
     rows_read: int
