@@ -40,7 +40,7 @@ from dataclasses import dataclass, field, replace
 
 import numpy as np
 from scipy import sparse
-from scipy.sparse.csgraph import min_weight_full_bipartite_matching
+from scipy.sparse.csgraph import connected_components, min_weight_full_bipartite_matching
 
 from .._base.jsonable import fields_dict
 from ..errors import InputError
@@ -282,38 +282,62 @@ def _candidates(le, lr, width, L):
 
 
 def _match_group(logit, e, r, K, C, sd, width, nearest):
-    """Optimal matching of exposed ``e`` to reference ``r`` (indices); [(exposed, reference)]."""
+    """Optimal matching of exposed ``e`` to reference ``r`` (indices); [(exposed, reference)].
+
+    The objective adds up over the connected pieces of the caliper graph, so each piece is
+    solved on its own (the solver's work grows faster than the size of a piece).
+    """
     r = r[np.argsort(logit[r], kind="stable")]
-    le, lr = logit[e], logit[r]
-    rows, cols, dist = _candidates(le, lr, width, nearest * K)
+    rows, cols, dist = _candidates(logit[e], logit[r], width, nearest * K)
     has = np.zeros(e.size, dtype=bool)
     has[rows] = True
     lonely = int((~has).sum())
     if not has.any():
         return [], 0, 0, lonely
-    # exposed units with an edge, renumbered; each becomes K slots (rows k * m + i)
-    keep = np.flatnonzero(has)
+    keep = np.flatnonzero(has)                 # exposed units with an edge, renumbered
     renum = np.full(e.size, -1)
     renum[keep] = np.arange(keep.size)
-    # only reference units with an edge enter the graph (the solver's work grows with columns)
-    used, cols = np.unique(cols, return_inverse=True)
+    rows = renum[rows]
+    used, cols = np.unique(cols, return_inverse=True)   # reference units with an edge
     r = r[used]
     m, nr = keep.size, r.size
+    weight = 1.0 + (dist / sd if sd > 0 else np.zeros_like(dist))  # +1: a tie keeps its edge
+    adj = sparse.csr_matrix((np.ones(rows.size), (rows, cols)), shape=(m, nr))
+    n_piece, piece = connected_components(sparse.bmat([[None, adj], [adj.T, None]]),
+                                          directed=False)
+    pe, pr = piece[:m], piece[m:]
+    e_order, r_order = np.argsort(pe, kind="stable"), np.argsort(pr, kind="stable")
+    e_cut = np.searchsorted(pe[e_order], np.arange(n_piece + 1))
+    r_cut = np.searchsorted(pr[r_order], np.arange(n_piece + 1))
+    e_local = np.empty(m, dtype=np.int64)
+    e_local[e_order] = np.arange(m) - e_cut[pe[e_order]]
+    r_local = np.empty(nr, dtype=np.int64)
+    r_local[r_order] = np.arange(nr) - r_cut[pr[r_order]]
+    edge_order = np.argsort(pe[rows], kind="stable")
+    edge_cut = np.searchsorted(pe[rows][edge_order], np.arange(n_piece + 1))
+    pairs = []
+    for c in range(n_piece):
+        ed = edge_order[edge_cut[c]:edge_cut[c + 1]]
+        mc, rc = int(e_cut[c + 1] - e_cut[c]), int(r_cut[c + 1] - r_cut[c])
+        got = _solve_piece(e_local[rows[ed]], r_local[cols[ed]], weight[ed], mc, rc, K, C)
+        for i, j in got:
+            pairs.append((int(e[keep[e_order[e_cut[c] + i]]]), int(r[r_order[r_cut[c] + j]])))
+    return pairs, int(rows.size * K), int(m * K), lonely
+
+
+def _solve_piece(rows, cols, weight, m, nr, K, C):
+    """One minimum-weight full bipartite matching: K slots per exposed unit (rows k * m + i),
+    the nr reference columns, and a private unmatched column per slot."""
     N = m * K
-    scaled = dist / sd if sd > 0 else np.zeros_like(dist)
-    weight = 1.0 + scaled                              # +1: an exact tie keeps its edge
     price = N * (1.0 + C) + 1.0                        # above any N matched edges
-    slot_rows = (np.arange(K)[:, None] * m + renum[rows][None, :]).ravel()
-    slot_cols = np.tile(cols, K)
-    slot_w = np.tile(weight, K)
-    all_rows = np.concatenate((slot_rows, np.arange(N)))
-    all_cols = np.concatenate((slot_cols, nr + np.arange(N)))
-    all_w = np.concatenate((slot_w, np.full(N, price)))
+    all_rows = np.concatenate(((np.arange(K)[:, None] * m + rows[None, :]).ravel(),
+                               np.arange(N)))
+    all_cols = np.concatenate((np.tile(cols, K), nr + np.arange(N)))
+    all_w = np.concatenate((np.tile(weight, K), np.full(N, price)))
     graph = sparse.csr_matrix((all_w, (all_rows, all_cols)), shape=(N, nr + N))
     assigned = min_weight_full_bipartite_matching(graph)[1]
     real = np.flatnonzero(assigned < nr)
-    pairs = list(zip(e[keep[real % m]].tolist(), r[assigned[real]].tolist()))
-    return pairs, int(slot_w.size), int(N), lonely
+    return list(zip((real % m).tolist(), assigned[real].tolist()))
 
 
 # ----------------------------------------------------------------------------- the study design
