@@ -461,6 +461,9 @@ def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_diff
     b = _Bounder(values, t, labels, estimand, statistic, direction, layout, seed=seed)
     g_up, flag_up = _root_from_test(lambda g: b(g)[0], level, cap, p_at_one)
     g_sep, flag_sep = _root_from_test(lambda g: b(g)[1], level, cap, p_at_one)
+    if b.method == "pairs_monte_carlo" and flag_up.startswith("ok ("):
+        # the estimate from fixed draws is a step function of Gamma: its root sits at a step
+        flag_up = "ok (Monte Carlo estimate, a step function of Gamma: the root is at a step)"
     return SensitivityValue(gamma=g_up, gamma_separable=g_sep, flag=flag_up, flag_separable=flag_sep,
                             alpha=level, alpha_note=note, cap=cap, p_at_gamma=b(g_up)[0], method=b.method,
                             statistic=statistic, direction=b.direction, estimand=estimand, moments=b.moments)
