@@ -210,6 +210,9 @@ def _check_design(spec, set_) -> None:
         if spec.strata_column is not None:
             raise InputError("`strata_column` and `design=match` exclude each other: give "
                              "ready-made matched sets or let the tool build them, not both")
+        if spec.strata_method != "quantile":
+            raise InputError(f"`strata_method={spec.strata_method}` and `design=match` exclude "
+                             "each other: the matched sets are the strata")
 
 
 #: Keys accepted in a TOML analysis file (the [analysis] table or the top level), mapped to fields.

@@ -106,6 +106,8 @@ def test_strata_design_keeps_its_spec_keys():
     (dict(same_value_on="colour"), "`same_value_on` names 'colour', not a column"),
     (dict(caliper_sd=1e-9), "no exposed unit has a reference unit within the caliper"),
     (dict(design="pairs"), "`design` must be one of strata, match"),
+    (dict(strata_column="sex"), "`strata_column` and `design=match` exclude each other"),
+    (dict(strata_method="adaptive"), "`strata_method=adaptive` and `design=match` exclude"),
 ])
 def test_bad_matching_arguments(options, message):
     with pytest.raises(InputError, match=message):
