@@ -111,3 +111,12 @@ def test_normal_beside_uses_the_exact_moments():
     obs = ex.mean() - np.minimum(ex, ref).mean()
     z = (obs - p * a.sum()) / math.sqrt(p * (1 - p) * np.sum(a * a))
     assert b.p_separable[0] == pytest.approx(stats.norm.sf(z), rel=1e-10)
+
+
+def test_very_many_pairs_quote_the_normal_value(monkeypatch):
+    rng = np.random.default_rng(6)
+    v, t, labels = _pairs(30, rng)
+    monkeypatch.setattr(_gamma_pairs, "EXACT_SUPPORT", 1)
+    monkeypatch.setattr(_gamma_pairs, "MONTE_CARLO_BUDGET", 10)
+    b = gamma_bounds(v, t, labels, estimand="att", gammas=[1.5])
+    assert b.method == "pairs_normal" and b.p_upper == b.p_separable

@@ -56,6 +56,9 @@ _METHOD_TEXT = {
     "pairs_monte_carlo": "matched pairs: draws from the worst-case allocation (each pair puts probability "
                          "Gamma / (1 + Gamma) on its larger value; Rosenbaum 2002, ch. 4), an unbiased "
                          "estimate of the bound; the normal approximation with its exact moments beside it",
+    "pairs_normal": "matched pairs: normal approximation with the exact moments of the worst-case allocation "
+                    "(each pair puts probability Gamma / (1 + Gamma) on its larger value; Rosenbaum 2002, "
+                    "ch. 4); too many pairs to draw from it within the budget",
     "bracket": "normal approximation bracket: [separable (Gastwirth, Krieger & Rosenbaum 2000), conservative "
                "(per-stratum maximum mean and variance bound over all vertices)]",
 }

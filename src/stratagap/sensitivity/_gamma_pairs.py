@@ -18,7 +18,10 @@ the upper tail of that one distribution:
   (a binary outcome with equal pair weights: Binomial(D, p) over the D discordant pairs);
 * otherwise by Monte Carlo draws from the worst-case allocation itself, an unbiased estimate of
   the bound with its standard error, beside the normal approximation with the exact moments
-  (mean base + p sum a_s, variance p (1 - p) sum a_s^2).
+  (mean base + p sum a_s, variance p (1 - p) sum a_s^2);
+* with so many pairs that the draws would cost more than :data:`MONTE_CARLO_BUDGET`
+  Bernoulli draws per Gamma, by that normal approximation alone (a sum of many bounded
+  independent terms; the quoted bound is then approximate, and says so).
 
 References
 ----------
@@ -45,6 +48,8 @@ __all__ = ["PairsBound", "is_pairs", "EXACT_SUPPORT", "RESAMPLES"]
 EXACT_SUPPORT = 2 ** 20 + 1
 #: Monte Carlo draws from the worst-case allocation when the support is larger.
 RESAMPLES = 10_000
+#: Largest pairs x resamples drawn per Gamma; beyond it the normal approximation is quoted.
+MONTE_CARLO_BUDGET = 2e8
 #: Draws per batch (memory: batch x pairs floats).
 BATCH = 50
 
@@ -76,9 +81,14 @@ class PairsBound:
         for k in self.counts:
             support *= float(k) + 1.0
         self.exact = support <= EXACT_SUPPORT
-        self.method = "pairs_exact" if self.exact else "pairs_monte_carlo"
-        self.sum_a, self.sum_a2 = float(a.sum()), float(np.sum(a * a))
         self.resamples = int(resamples)
+        if self.exact:
+            self.method = "pairs_exact"
+        elif self.n_nonzero * self.resamples <= MONTE_CARLO_BUDGET:
+            self.method = "pairs_monte_carlo"
+        else:
+            self.method = "pairs_normal"
+        self.sum_a, self.sum_a2 = float(a.sum()), float(np.sum(a * a))
         self._seed = seed
         self.mc_se = {}
 
@@ -90,6 +100,8 @@ class PairsBound:
     def __call__(self, gamma: float) -> float:
         if self.n_nonzero == 0:
             return 1.0 if self.target <= self.tie else 0.0
+        if self.method == "pairs_normal":
+            return self.normal(gamma)
         return self._exact(gamma) if self.exact else self._monte_carlo(gamma)
 
     def _exact(self, gamma):
