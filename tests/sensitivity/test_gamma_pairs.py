@@ -120,3 +120,14 @@ def test_very_many_pairs_quote_the_normal_value(monkeypatch):
     monkeypatch.setattr(_gamma_pairs, "MONTE_CARLO_BUDGET", 10)
     b = gamma_bounds(v, t, labels, estimand="att", gammas=[1.5])
     assert b.method == "pairs_normal" and b.p_upper == b.p_separable
+
+
+def test_observed_at_the_bottom_gives_one(monkeypatch):
+    # every exposed unit has its pair's smaller value: every allocation reaches T_obs
+    v = np.array([0.0, 1.0, 0.5, 2.0, -1.0, 0.3])
+    t = np.array([1, 0, 1, 0, 1, 0], dtype=np.int8)
+    labels = np.repeat(np.arange(3), 2)
+    for support in (_gamma_pairs.EXACT_SUPPORT, 1):
+        monkeypatch.setattr(_gamma_pairs, "EXACT_SUPPORT", support)
+        b = gamma_bounds(v, t, labels, estimand="att", gammas=[2.0])
+        assert b.p_upper == [1.0]

@@ -350,7 +350,7 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
     if b.method == "pairs_monte_carlo":
         mc = {"label": "Monte Carlo from the worst-case allocation (matched pairs)",
               "resamples": b.pairs.resamples,
-              "mc_se": {str(g): b.pairs.mc_se[float(g)] for g in gammas if g > 1.0},
+              "mc_se": {str(g): b.pairs.mc_se.get(float(g), 0.0) for g in gammas if g > 1.0},
               "meaning": "an unbiased estimate of the bound (p_upper); p_separable is the normal "
                          "approximation with the exact moments of the same allocation",
               "where": "every Gamma"}

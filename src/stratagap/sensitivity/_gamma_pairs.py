@@ -90,6 +90,7 @@ class PairsBound:
             self.method = "pairs_normal"
         self.sum_a, self.sum_a2 = float(a.sum()), float(np.sum(a * a))
         self._seed = seed
+        self._p_star = None
         self.mc_se = {}
 
     def normal(self, gamma: float) -> float:
@@ -98,7 +99,7 @@ class PairsBound:
         return _normal_sf(self.target - p * self.sum_a, p * (1.0 - p) * self.sum_a2)
 
     def __call__(self, gamma: float) -> float:
-        if self.n_nonzero == 0:
+        if self.n_nonzero == 0 or self.target <= self.tie:  # nothing to reach: every draw does
             return 1.0 if self.target <= self.tie else 0.0
         if self.method == "pairs_normal":
             return self.normal(gamma)
@@ -115,17 +116,29 @@ class PairsBound:
         return float(min(1.0, mass[support >= self.target - self.tie].sum()))
 
     def _monte_carlo(self, gamma):
-        """(1 + #{T_b >= T_obs}) / (1 + B). The uniforms are drawn again from the seed at each
-        call (memory: one batch), so the same uniforms serve every Gamma and the estimate does
-        not decrease in Gamma (B_s = [U_s < p] grows with p)."""
-        a = np.repeat(self.values, self.counts)
-        rng = substream(self._seed, "gamma pairs")
+        """(1 + #{T_b >= T_obs}) / (1 + B), T_b = sum_s a_s [U_bs < p].
+
+        With a_s >= 0, T_b reaches the target exactly when p exceeds p*_b, the uniform at
+        which the running sum of a over the pairs in increasing U_b first reaches it. The p*_b
+        are found once (one sort per draw), so each Gamma (a grid, a root search) costs one
+        search, and the same draws serve every Gamma: the estimate does not decrease in Gamma.
+        """
+        if self._p_star is None:
+            a = np.repeat(self.values, self.counts)
+            rng = substream(self._seed, "gamma pairs")
+            stars, done = [], 0
+            while done < self.resamples:
+                b = min(BATCH, self.resamples - done)
+                u = rng.random((b, a.size))
+                order = np.argsort(u, axis=1)
+                reach = np.cumsum(a[order], axis=1) >= self.target - self.tie
+                first = np.argmax(reach, axis=1)
+                star = np.take_along_axis(u, order, axis=1)[np.arange(b), first]
+                stars.append(np.where(reach.any(axis=1), star, np.inf))
+                done += b
+            self._p_star = np.sort(np.concatenate(stars))
         p = gamma / (1.0 + gamma)
-        hits, done = 0, 0
-        while done < self.resamples:
-            b = min(BATCH, self.resamples - done)
-            hits += int(np.sum((rng.random((b, a.size)) < p) @ a >= self.target - self.tie))
-            done += b
+        hits = int(np.searchsorted(self._p_star, p, side="left"))   # p*_b < p
         est = (hits + 1.0) / (self.resamples + 1.0)
         self.mc_se[float(gamma)] = math.sqrt(est * (1.0 - est) / self.resamples)
         return est
