@@ -90,7 +90,8 @@ def test_flow_counts_add_up_and_join_the_data_stage_counts(small_result, shift_d
                                       "reference": int(len(used) - used.sum())}
     # the data stage's Flow no longer declares the later stages' counts
     from stratagap.data import Flow
-    later = {"trimmed_by_group", "strata_set_aside_by_group", "analysed_by_group", "rows_analysed"}
+    later = {"trimmed_by_group", "strata_set_aside_by_group", "analysed_by_group", "rows_analysed",
+             "not_matched_by_group"}
     assert not later & {f.name for f in dataclasses.fields(Flow)}
     assert set(Flow.__dataclass_fields__) | later == {f.name for f in dataclasses.fields(flow)}
 

@@ -25,6 +25,7 @@ from .inference import permutation as _permutation
 from .stratify import scores as _scores
 from . import sensitivity as _sensitivity
 from .stratify import strata as _strata
+from .stratify import matching as _matching
 from ._base.layout import StratumLayout
 from .errors import InputError, MissingDataWarning, StrataWarning, StratagapWarning
 from .result import (AnalysisResult, CAUTIONS, TEST_LABELS, ParticipantFlow, PermutationTests,
@@ -118,12 +119,22 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
     clock.lap("overlap")
     keep = np.asarray(overlap.keep, dtype=bool)
     user = None if prepared.user_strata is None else prepared.user_strata[keep]
-    strata = _strata.make_strata(propensity.score[keep], prepared.t[keep], estimand=spec.estimand,
-                                 n_strata=spec.n_strata, method=spec.strata_method,
-                                 min_per_group=spec.min_per_group, user_labels=user,
-                                 logit=propensity.logit[keep],
-                                 # Imbens & Rubin 2015, ch. 13: a new block needs >= K + 2 units
-                                 min_block=len(prepared.design_names) + 2)
+    matching = None
+    if spec.design == "match":  # matched sets built on the score are the strata from here on
+        matching, strata = _matching.matched_design(
+            propensity.score, propensity.logit, prepared.t, keep, table=table,
+            row_ids=prepared.row_ids, per_exposed=spec.per_exposed, caliper_sd=spec.caliper_sd,
+            same_value_on=spec.same_value_on)
+        overlap = dataclasses.replace(overlap, estimand_label=_matching.population_label(
+            overlap.estimand_label, matching))
+    else:
+        strata = _strata.make_strata(propensity.score[keep], prepared.t[keep],
+                                     estimand=spec.estimand, n_strata=spec.n_strata,
+                                     method=spec.strata_method,
+                                     min_per_group=spec.min_per_group, user_labels=user,
+                                     logit=propensity.logit[keep],
+                                     # Imbens & Rubin 2015, ch. 13: a new block needs >= K + 2
+                                     min_block=len(prepared.design_names) + 2)
     clock.lap("strata")
     # Rows analysed: kept by the overlap rule and in a stratum holding both groups.
     in_stratum = np.asarray(strata.labels) >= 0
@@ -135,8 +146,11 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
     terms = [dataclasses.replace(term, values=None if term.values is None else term.values[used])
              for term in prepared.terms]
     weights = _strata.unit_weights(labels, t, spec.estimand)
-    balance = _balance.balance_table(X, t, terms, weights_after=weights,
-                                     logit=propensity.logit[used])
+    if matching is None:
+        balance = _balance.balance_table(X, t, terms, weights_after=weights,
+                                         logit=propensity.logit[used])
+    else:  # before: every unit offered to the matching; after: the matched sample
+        balance = _matching.matched_balance(prepared, keep, used, weights, propensity.logit)
     clock.lap("balance")
 
     layout = StratumLayout.build(labels, t, spec.estimand)  # one layout of the analysed rows
@@ -198,8 +212,10 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
         batch_size=spec.batch_size, interaction_min_extra=spec.interaction_min_extra)
     clock.lap("negative_control")
     flow = ParticipantFlow.from_stages(prepared.flow, trimmed_by_group=overlap.set_aside,
-                                       strata_set_aside_by_group=getattr(strata, "set_aside", {}),
-                                       t_analysed=t)
+                                       strata_set_aside_by_group=getattr(strata, "set_aside", {})
+                                       if matching is None else {},
+                                       t_analysed=t, not_matched_by_group=None
+                                       if matching is None else strata.set_aside)
     test_set = PermutationTests(main=tests["main"], statistic_kind=spec.statistic,
                                 statistic_label=TEST_LABELS[spec.statistic],
                                 studentized=tests.get("studentized"),
@@ -209,10 +225,12 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
         overlap=overlap, strata=strata, balance=balance, tests=test_set, crude=crude,
         adjusted=adjusted, plain=plain, constant_effect=constant, mantel_haenszel=mh,
         risk_ratio=risk_ratio, cross_checks=cross, heterogeneity=heterogeneity,
-        sensitivity=sensitivity, negative_control=negative,
+        sensitivity=sensitivity, negative_control=negative, matching=matching,
         arrays={"score": propensity.score, "t_all": prepared.t, "keep": keep, "used": used,
                 "labels": labels, "t": t, "y": y,
                 "row_ids": prepared.row_ids,
+                "matched_sets": None if matching is None else _matching.matched_sets_rows(
+                    matching, prepared.t, prepared.row_ids, keep),
                 # covariate columns of the analysed rows, for the baseline table
                 "raw": prepared.raw.iloc[used].reset_index(drop=True)},
     )

@@ -91,8 +91,9 @@ class ParticipantFlow:
     """The ``flow`` block: row counts from the file to the analysed rows.
 
     The first nine fields are the data stage's counts
-    (:class:`stratagap.data.Flow`, already JSON-ready); the last four come from the overlap
-    rule, the strata and the analysed rows. Built once, by :meth:`from_stages`.
+    (:class:`stratagap.data.Flow`, already JSON-ready); the next four come from the overlap
+    rule, the strata and the analysed rows, and ``not_matched_by_group`` (present with
+    ``design=match`` only) from the matching. Built once, by :meth:`from_stages`.
     """
 
     rows_read: int
@@ -108,19 +109,22 @@ class ParticipantFlow:
     strata_set_aside_by_group: dict  # in a stratum lacking a group, by group
     analysed_by_group: dict
     rows_analysed: int
+    not_matched_by_group: dict | None = None  # design=match: left out of the matched sets
 
     @classmethod
     def from_stages(cls, counts, *, trimmed_by_group, strata_set_aside_by_group,
-                    t_analysed) -> "ParticipantFlow":
+                    t_analysed, not_matched_by_group=None) -> "ParticipantFlow":
         """``counts``: the data stage's Flow; ``t_analysed``: exposure of the analysed rows."""
         n1 = int(t_analysed.sum())
         return cls(**counts.to_dict(), trimmed_by_group=jsonable(dict(trimmed_by_group)),
                    strata_set_aside_by_group=jsonable(dict(strata_set_aside_by_group or {})),
                    analysed_by_group={"exposed": n1, "reference": int(len(t_analysed) - n1)},
-                   rows_analysed=int(len(t_analysed)))
+                   rows_analysed=int(len(t_analysed)),
+                   not_matched_by_group=None if not_matched_by_group is None
+                   else jsonable(dict(not_matched_by_group)))
 
     def to_dict(self) -> dict:
-        return fields_dict(self)
+        return fields_dict(self, optional=("not_matched_by_group",))
 
 
 @dataclass(frozen=True)
@@ -163,6 +167,7 @@ class AnalysisResult:
     cautions: tuple
     run: dict = field(compare=False)
     arrays: dict = field(compare=False, repr=False)
+    matching: Any = None  # design=match: stratagap.stratify.matching.Matching
 
     # -- convenience -----------------------------------------------------------------
     @property
@@ -245,6 +250,7 @@ class AnalysisResult:
             "cross_checks": cross["rows"],
             "cross_check_weights": cross["weights"],
             "sensitivity": self.sensitivity,
+            **({} if self.matching is None else {"matching": self.matching}),
             "negative_control": self.negative_control,
             "verdict": self.verdict,
             "warnings": [dict(w) for w in self.warnings],

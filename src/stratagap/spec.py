@@ -41,6 +41,8 @@ STRATA_METHODS = ("quantile", "adaptive")
 MISSING_POLICIES = ("drop", "error", "indicator")
 OUTCOME_TYPES = ("auto", "binary", "continuous")
 MAX_RESAMPLES = 10_000_000
+DESIGNS = ("strata", "match")
+MATCHING_FIELDS = ("design", "per_exposed", "caliper_sd", "same_value_on")
 
 
 @dataclass(frozen=True)
@@ -54,10 +56,14 @@ class AnalysisSpec:
     exposed_value: str | None = None
     outcome_type: str = "auto"
     outcome_event: str | None = None
-    estimand: str = "ate"
+    estimand: str | None = None  # None: "ate", or "att" with design="match"
     n_strata: int = 5
     strata_method: str = "quantile"
     strata_column: str | None = None
+    design: str = "strata"  # or "match": matched sets built on the score (stratify/matching.py)
+    per_exposed: int = 1
+    caliper_sd: float = 0.2  # pooled SDs of the logit of the score (Austin 2011)
+    same_value_on: tuple[str, ...] | None = None
     min_per_group: int = 3
     trim: str = "auto"
     score_model: str = "logistic"
@@ -87,9 +93,12 @@ class AnalysisSpec:
 
     def to_dict(self) -> dict:
         out = dataclasses.asdict(self)
-        for key in ("covariates", "gamma_grid", "truncate_weights"):
+        for key in ("covariates", "gamma_grid", "truncate_weights", "same_value_on"):
             if out[key] is not None:
                 out[key] = list(out[key])
+        if self.design == "strata":  # the matching settings shape only a matched design
+            for key in MATCHING_FIELDS:
+                del out[key]
         return out
 
 
@@ -129,6 +138,7 @@ def _check(spec: AnalysisSpec) -> None:
         raise InputError("`covariates` is empty: name the measured confounders (A,B,C) or give `formula`")
     if spec.exposed_value is not None:
         set_(spec, "exposed_value", str(spec.exposed_value))
+    _check_design(spec, set_)
     _choice(spec.estimand, ESTIMANDS, "estimand")
     _choice(spec.alternative, ALTERNATIVES, "alternative")
     _choice(spec.engine, ENGINES, "engine")
@@ -174,6 +184,36 @@ def _check(spec: AnalysisSpec) -> None:
         raise InputError("`strata_column` and `strata_method=adaptive` exclude each other: choose one")
     if spec.measure != "difference" and spec.outcome_type == "continuous":
         raise InputError(f"`measure={spec.measure}` needs a binary outcome; use `measure=difference`")
+
+
+def _check_design(spec, set_) -> None:
+    _choice(spec.design, DESIGNS, "design")
+    if spec.estimand is None:
+        set_(spec, "estimand", "att" if spec.design == "match" else "ate")
+    set_(spec, "per_exposed", _int_in(spec.per_exposed, 1, 100, "per_exposed"))
+    try:
+        caliper = float(spec.caliper_sd)
+    except (TypeError, ValueError):
+        caliper = math.nan
+    if not (math.isfinite(caliper) and caliper > 0):
+        raise InputError(f"`caliper_sd` must be a positive number of pooled SDs of the logit of "
+                         f"the score (0.2 is the usual choice); got {spec.caliper_sd!r}")
+    set_(spec, "caliper_sd", caliper)
+    cols = spec.same_value_on
+    if isinstance(cols, str):
+        cols = [c.strip() for c in cols.split(",") if c.strip()]
+    set_(spec, "same_value_on", tuple(cols) if cols else None)
+    if spec.design == "match":
+        if spec.estimand == "ate":
+            raise InputError("`estimand=ate` does not go with `design=match`: matched sets "
+                             "estimate the effect in the matched exposed units; use "
+                             "`estimand=att` or `design=strata`")
+        if spec.strata_column is not None:
+            raise InputError("`strata_column` and `design=match` exclude each other: give "
+                             "ready-made matched sets or let the tool build them, not both")
+        if spec.strata_method != "quantile":
+            raise InputError(f"`strata_method={spec.strata_method}` and `design=match` exclude "
+                             "each other: the matched sets are the strata")
 
 
 #: Keys accepted in a TOML analysis file (the [analysis] table or the top level), mapped to fields.

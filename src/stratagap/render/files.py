@@ -26,7 +26,7 @@ DEMO_MARKER = ".stratagap-demo"
 #: Every name this package may write into an output folder (the report adds figures/).
 OUTPUT_NAMES = ("results.json", "run.json", "balance.csv", "strata.csv", "report.html",
                 "baseline.csv", "baseline.md", "baseline.tex", "shift_work.csv", "truth.json",
-                "figures", DEMO_MARKER)
+                "matched_sets.csv", "figures", DEMO_MARKER)
 
 
 def prepare_folder(out: str | Path, *, inputs=(), overwrite: bool = False,
@@ -98,6 +98,13 @@ def strata_csv(data: dict) -> str:
     return _csv(strata_with_estimates(data), STRATA_COLUMNS)
 
 
+def matched_sets_csv(sets: dict) -> str:
+    """matched_sets.csv: set, row (0-based row of the input file), group, logit_gap."""
+    rows = [{"set": int(a), "row": int(b), "group": c, "logit_gap": repr(float(d))}
+            for a, b, c, d in zip(sets["set"], sets["row"], sets["group"], sets["logit_gap"])]
+    return _csv(rows, ["set", "row", "group", "logit_gap"])
+
+
 def write_result(result: AnalysisResult, folder: Path, *, report: bool = True) -> list[Path]:
     """Write results.json, run.json, balance.csv, strata.csv (and the report) into ``folder``."""
     folder = Path(folder)
@@ -112,6 +119,9 @@ def write_result(result: AnalysisResult, folder: Path, *, report: bool = True) -
     put("run.json", to_json(result.run))  # timings and versions: kept out of results.json
     put("balance.csv", balance_csv(data))
     put("strata.csv", strata_csv(data))
+    sets = (result.arrays or {}).get("matched_sets")
+    if sets is not None:  # design=match: one row per matched unit
+        put("matched_sets.csv", matched_sets_csv(sets))
     if report:
         from .report import write_report  # matplotlib loads only when a report is written
         written.extend(write_report(result, folder, write=write_atomic))

@@ -28,6 +28,12 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
         f"  adjusted {adj['measure']}: {_n(adj['estimate'])} "
         f"({level}% CI {_n(adj['ci_low'])} to {_n(adj['ci_high'])})",
     ]
+    if data.get("matching"):
+        m = data["matching"]
+        left = ", ".join(f"{v} {k.replace('_', ' ')}" for k, v in m["unmatched_exposed"].items() if v)
+        lines.append(f"  matched sets: {m['matched_exposed']} of {m['n_exposed']} exposed units, "
+                     f"1:{m['per_exposed']}, caliper {_n(m['caliper_sd'])} SD of the logit; "
+                     f"left unmatched: {left or 'none'}")
     if truth is not None:
         key = q["estimand"].lower()
         lines.append(f"  TRUE effect (invented data, {q['estimand']} in the analysed population): "

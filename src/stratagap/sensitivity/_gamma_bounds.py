@@ -36,6 +36,7 @@ from .._base.layout import layout_for
 from ..inference import Statistic
 from ._nchyper import _cut_moments, _normal_sf, _perm_moments
 from . import _gamma_monte_carlo as _mc
+from ._gamma_pairs import PairsBound, is_pairs
 from ._gamma_binary import _binary_exact_p, _binary_normal_p, _binary_setup, _convolution_cost
 
 __all__ = ["GammaBounds", "SensitivityValue", "gamma_bounds", "sensitivity_value", "anchor_at_one",
@@ -50,6 +51,14 @@ EXACT_CONVOLUTION_BUDGET = 1e8
 _METHOD_TEXT = {
     "exact": "exact: Fisher noncentral hypergeometric per stratum (u = outcome), exact convolution",
     "normal_binary": "normal approximation from the per-stratum noncentral hypergeometric moments (u = outcome)",
+    "pairs_exact": "exact for matched pairs: each pair puts probability Gamma / (1 + Gamma) on its larger "
+                   "value (the worst case; Rosenbaum 2002, ch. 4), tail by exact convolution",
+    "pairs_monte_carlo": "matched pairs: draws from the worst-case allocation (each pair puts probability "
+                         "Gamma / (1 + Gamma) on its larger value; Rosenbaum 2002, ch. 4), an unbiased "
+                         "estimate of the bound; the normal approximation with its exact moments beside it",
+    "pairs_normal": "matched pairs: normal approximation with the exact moments of the worst-case allocation "
+                    "(each pair puts probability Gamma / (1 + Gamma) on its larger value; Rosenbaum 2002, "
+                    "ch. 4); too many pairs to draw from it within the budget",
     "bracket": "normal approximation bracket: [separable (Gastwirth, Krieger & Rosenbaum 2000), conservative "
                "(per-stratum maximum mean and variance bound over all vertices)]",
 }
@@ -65,9 +74,11 @@ class GammaBounds:
     gammas : list of float
     p_upper : list of float
         The bound to quote: the exact bound (method "exact"), the normal bound ("normal_binary"),
-        or the conservative end of the bracket ("bracket").
+        the exact worst case of matched pairs ("pairs_exact") or its Monte Carlo estimate
+        ("pairs_monte_carlo"), or the conservative end of the bracket ("bracket").
     p_separable : list of float
-        The separable value (lower end of the bracket; equals `p_upper` for the binary methods).
+        The separable value (lower end of the bracket; equals `p_upper` for the binary methods;
+        for pairs, the normal approximation at the worst-case allocation).
     method : str
         "exact", "normal_binary" or "bracket"; `method_text` says it in words.
     statistic, direction, estimand : str
@@ -237,7 +248,7 @@ def _bracket_p(d, gamma, cache=None):
 class _Bounder:
     """Callable p-value bound at one Gamma, prepared once for a data set."""
 
-    def __init__(self, values, t, labels, estimand, statistic, direction, layout=None):
+    def __init__(self, values, t, labels, estimand, statistic, direction, layout=None, seed=0):
         values, t, labels = _check(values, t, labels, estimand, statistic, direction)
         self.statistic, self.estimand = statistic, estimand
         layout = layout_for(layout, labels, t, estimand)  # rows set aside: dropped by _check
@@ -254,6 +265,9 @@ class _Bounder:
         if self.binary:
             self.raw, self.count = _binary_setup(values, t, layout, sign)
             self.method = "exact" if _convolution_cost(self.raw) <= EXACT_CONVOLUTION_BUDGET else "normal_binary"
+        elif is_pairs(self.design):  # matched pairs: the worst case is known exactly
+            self.pairs = PairsBound(self.design, seed=seed)
+            self.method = self.pairs.method
         else:
             self.method = "bracket"
 
@@ -267,6 +281,8 @@ class _Bounder:
             if not ex:
                 self.moments = "large-stratum approximation"
             return p, p
+        if self.method.startswith("pairs"):  # quoted: the worst case; beside it, its normal value
+            return self.pairs(gamma), self.pairs.normal(gamma)
         p_sep, p_con, ex = _bracket_p(self.design, gamma, self._cache)
         if not ex:
             self.moments = "large-stratum approximation"
@@ -328,9 +344,16 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
     moments of the noncentral hypergeometric; from memory). IARC, Lyon.
     """
     gammas = _check_gammas(gammas)
-    b = _Bounder(values, t, labels, estimand, statistic, direction, layout)
+    b = _Bounder(values, t, labels, estimand, statistic, direction, layout, seed=seed)
     p_up, p_sep = zip(*(b(g) for g in gammas))
     p_mc, mc = None, None
+    if b.method == "pairs_monte_carlo":
+        mc = {"label": "Monte Carlo from the worst-case allocation (matched pairs)",
+              "resamples": b.pairs.resamples,
+              "mc_se": {str(g): b.pairs.mc_se.get(float(g), 0.0) for g in gammas if g > 1.0},
+              "meaning": "an unbiased estimate of the bound (p_upper); p_separable is the normal "
+                         "approximation with the exact moments of the same allocation",
+              "where": "every Gamma"}
     if monte_carlo_level is not None and b.method == "bracket":
         where = _mc.disagreeing(gammas, p_up, p_sep, monte_carlo_level)
         if where:
@@ -400,7 +423,7 @@ def anchor_at_one(bounds: GammaBounds, p_at_one: float, engine: str) -> GammaBou
 
 def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_difference", direction="auto",
                       alpha=0.05, two_sided=False, cap=GAMMA_CAP, layout=None,
-                      p_at_one=None) -> SensitivityValue:
+                      p_at_one=None, seed=0) -> SensitivityValue:
     """The Gamma at which the one-sided p-value bound reaches alpha (root finding on log Gamma).
 
     Parameters
@@ -438,9 +461,12 @@ def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_diff
     level = alpha / 2.0 if two_sided else alpha
     note = (f"one-sided bound at alpha/2 = {level:g} per side (the core test is two-sided)" if two_sided
             else f"one-sided bound at alpha = {level:g}")
-    b = _Bounder(values, t, labels, estimand, statistic, direction, layout)
+    b = _Bounder(values, t, labels, estimand, statistic, direction, layout, seed=seed)
     g_up, flag_up = _root_from_test(lambda g: b(g)[0], level, cap, p_at_one)
     g_sep, flag_sep = _root_from_test(lambda g: b(g)[1], level, cap, p_at_one)
+    if b.method == "pairs_monte_carlo" and flag_up.startswith("ok ("):
+        # the estimate from fixed draws is a step function of Gamma: its root sits at a step
+        flag_up = "ok (Monte Carlo estimate, a step function of Gamma: the root is at a step)"
     return SensitivityValue(gamma=g_up, gamma_separable=g_sep, flag=flag_up, flag_separable=flag_sep,
                             alpha=level, alpha_note=note, cap=cap, p_at_gamma=b(g_up)[0], method=b.method,
                             statistic=statistic, direction=b.direction, estimand=estimand, moments=b.moments)

@@ -98,7 +98,8 @@ def sensitivity_analysis(values, t, labels, X, y, terms, *, test, statistic: str
         bounds = anchor_at_one(bounds, p_at_one, test.engine)
     threshold = sensitivity_value(values, t, labels, estimand=estimand, statistic=statistic,
                                   direction=direction, alpha=alpha,
-                                  two_sided=alternative == "two-sided", p_at_one=p_at_one)
+                                  two_sided=alternative == "two-sided", p_at_one=p_at_one,
+                                  seed=seed)
     e_value = headline_e_value(adjusted, risk_ratio, y, t, binary=binary, alpha=alpha)
     scale = "difference" if measure == "difference" else "rr"
     ratio = adjusted if measure == "rr" else risk_ratio

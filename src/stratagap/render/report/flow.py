@@ -60,6 +60,11 @@ def flow_steps(flow: dict) -> list[dict]:
     if n_lack:
         exits.append({"title": "Set aside: strata lacking one group", "n": n_lack,
                       "lines": [f"by group: {_groups(lacking)}"]})
+    unmatched = flow.get("not_matched_by_group")  # design=match only
+    if unmatched:
+        exits.append({"title": "Not in a matched set (exposed left unmatched, reference unused)",
+                      "n": sum(int(v) for v in unmatched.values()),
+                      "lines": [f"by group: {_groups(unmatched)}"]})
     steps.append({"title": "Complete cases", "n": used,
                   "detail": _groups(flow["used_by_group"]), "exits": exits})
     steps.append({"title": "Analysed", "n": analysed,
