@@ -31,7 +31,8 @@ def _row(s: dict) -> str:
     else:
         figures = f"**{100 * s['rate']:.2f} %** (SE {100 * s['se']:.2f})"
     verdict = "pass" if s["passed"] else "**FAIL**"
-    return (f"| {s['study']} | {s['description']} | {s['m']:,} | {figures} | {s['rule']} | "
+    figures, rule = (text.replace("|", "\\|") for text in (figures, s["rule"]))  # Markdown cells
+    return (f"| {s['study']} | {s['description']} | {s['m']:,} | {figures} | {rule} | "
             f"{verdict} | {s['cpu_seconds']:.0f} |")
 
 
