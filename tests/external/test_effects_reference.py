@@ -14,11 +14,11 @@ import math
 import numpy as np
 import pytest
 
-sm = pytest.importorskip("statsmodels.api")
-from statsmodels.stats.contingency_tables import StratifiedTable  # noqa: E402
+import statsmodels.api as sm  # a hard dependency: a missing reference must fail, not skip
+from statsmodels.stats.contingency_tables import StratifiedTable
 
-from stratagap.estimation import effects  # noqa: E402
-from stratagap.errors import ModelWarning  # noqa: E402
+from stratagap.estimation import effects
+from stratagap.errors import ModelWarning
 
 
 def _data(n=1500, seed=3, binary=False):

@@ -5,8 +5,11 @@ from __future__ import annotations
 import textwrap
 
 from .formatting import format_number as _n, format_p as _p
+from .verdict import NOT_SIGNIFICANT, measure_code
 
 __all__ = ["render_summary"]
+
+_SCALES = {"difference": "difference scale", "rr": "risk ratio", "or": "odds ratio"}
 
 
 def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) -> str:
@@ -42,10 +45,19 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
                  f"p = {_p(test['p_value'])} [{test['engine']}, {test['resamples']} resamples]")
     sens = data["sensitivity"]
     ev = sens["e_value"] or {}  # None when the E-value is undefined
-    lines.append(f"  sensitivity: Γ threshold {_n(sens['gamma_threshold'])}; "
+    detail = sens.get("gamma_threshold_detail") or {}
+    if detail.get("flag") == NOT_SIGNIFICANT:
+        gamma = "not significant without hidden bias (Γ = 1)"
+    else:
+        gamma = f"Γ threshold {_n(sens['gamma_threshold'])}"
+    lines.append(f"  sensitivity: {gamma}; "
                  f"E-value {_n(ev.get('point'))} (CI limit {_n(ev.get('ci_limit'))})")
+    headline = measure_code(adj["measure"])
     for row in data["cross_checks"]:
-        lines.append(f"  cross-check {row['method']}: {_n(row['estimate'])} "
+        # a cross-check on another scale than the headline's says which (issue 10, item 1)
+        scale = "" if row.get("measure", "difference") == headline else (
+            f" [{_SCALES.get(row.get('measure'), row.get('measure'))}]")
+        lines.append(f"  cross-check {row['method']}{scale}: {_n(row['estimate'])} "
                      f"({_n(row['ci_low'])} to {_n(row['ci_high'])})")
     if data["warnings"]:
         lines.append(f"  warnings ({len(data['warnings'])}):")

@@ -4,13 +4,27 @@ The wording is deliberately conservative: "the gap survives adjustment" is said 
 headline CI excludes the null, the default permutation test rejects at alpha, and balance after
 adjustment is acceptable (every |SMD| <= 0.1, common practice). Whatever is said, the cautions
 follow.
+
+Every effect number in the paragraph is on the headline's scale. With a ratio measure (risk or
+odds ratio, null 1) the crude comparison is quoted only when it is on the same scale, and any
+cross-check on the difference scale is named as such and not compared with the ratio null (the
+pipeline computes both on the headline's measure).
+When the test is not significant without hidden bias (Gamma = 1), the paragraph says so
+instead of quoting a sensitivity threshold.
 """
 
 from __future__ import annotations
 
 from .formatting import format_number as _fmt, format_p_relation as _fmt_p
 
-__all__ = ["write_verdict"]
+__all__ = ["write_verdict", "RATIO_MEASURES", "measure_code"]
+
+#: Headline measure names on the ratio scale (null 1); every other measure is a difference.
+RATIO_MEASURES = ("risk ratio", "odds ratio")
+#: Cross-check rows name their scale by code; the headline by name.
+_CODES = {"risk ratio": "rr", "odds ratio": "or"}
+#: The sensitivity value's flag when the one-sided test does not reject at Gamma = 1.
+NOT_SIGNIFICANT = "not significant at Gamma=1"
 
 
 def _get(obj, name, default=None):
@@ -21,10 +35,21 @@ def _get(obj, name, default=None):
     return getattr(obj, name, default)
 
 
+def measure_code(measure: str) -> str:
+    """The cross-check code of a headline measure name: "rr", "or" or "difference"."""
+    return _CODES.get(measure, "difference")
+
+
+def _ci(level, lo, hi):
+    return f"{level}% CI {_fmt(lo)} to {_fmt(hi)}"
+
+
 def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_checks,
                   negative_control, overlap) -> str:
     """Return the verdict paragraph (plain text)."""
-    null = 1.0 if _get(adjusted, "measure", "") in ("risk ratio", "odds ratio") else 0.0
+    measure = _get(adjusted, "measure", "difference")
+    ratio = measure in RATIO_MEASURES
+    null = 1.0 if ratio else 0.0
     lo, hi = _get(adjusted, "ci_low"), _get(adjusted, "ci_high")
     excludes = lo is not None and hi is not None and not (lo <= null <= hi)
     main = tests.main
@@ -34,53 +59,93 @@ def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_c
     balanced = max_smd is not None and max_smd <= 0.1
     level = int(round(100 * (1 - spec.alpha)))
     population = _get(overlap, "estimand_label", spec.estimand.upper())
-    measure = _get(adjusted, "measure", "difference")
 
-    parts = [
-        f"Crude {measure}: {_fmt(_get(crude, 'estimate'))} ({level}% CI {_fmt(_get(crude, 'ci_low'))} "
-        f"to {_fmt(_get(crude, 'ci_high'))}). Adjusted {measure} ({population}, regression within "
-        f"propensity-score strata): {_fmt(_get(adjusted, 'estimate'))} ({level}% CI {_fmt(lo)} to "
-        f"{_fmt(hi)}), which {'excludes' if excludes else 'includes'} the null value {null:g}.",
-        f"The stratified permutation test of the sharp null (no effect for anyone) gives p {_fmt_p(p)} "
-        f"({_get(main, 'alternative', spec.alternative)}).",
-    ]
+    parts = []
+    if not ratio or _get(crude, "measure") == measure:  # quoted only on the headline's scale
+        parts.append(f"Crude {_get(crude, 'measure', measure)}: {_fmt(_get(crude, 'estimate'))} "
+                     f"({_ci(level, _get(crude, 'ci_low'), _get(crude, 'ci_high'))}).")
+    parts.append(
+        f"Adjusted {measure} ({population}, regression within propensity-score strata): "
+        f"{_fmt(_get(adjusted, 'estimate'))} ({_ci(level, lo, hi)}), which "
+        f"{'excludes' if excludes else 'includes'} the null value {null:g}.")
+    parts.append(f"The stratified permutation test of the sharp null (no effect for anyone) "
+                 f"gives p {_fmt_p(p)} ({_get(main, 'alternative', spec.alternative)}).")
     if max_smd is not None:
         parts.append(f"After stratification the largest absolute standardized mean difference is "
                      f"{_fmt(max_smd, 3)} ({'within' if balanced else 'above'} the 0.1 threshold, "
                      f"common practice).")
-    gamma = sensitivity.gamma_threshold
+    parts.append(_gamma_sentence(sensitivity))
     e_point = _get(sensitivity.e_value, "point")
-    e_limit = _get(sensitivity.e_value, "ci_limit")
-    if gamma is not None:
-        parts.append(
-            f"An unmeasured confounder would have to change the odds of exposure within a stratum by "
-            f"a factor of Γ = {_fmt(gamma)} to make the one-sided test lose significance at "
-            f"{_fmt(sensitivity.gamma_level, 3)}.")
     if e_point is not None:
-        parts.append(f"E-value: {_fmt(e_point)} for the estimate and {_fmt(e_limit)} for the "
-                     f"confidence limit closer to the null.")
-    rows = _get(cross_checks, "rows", cross_checks) or []
-    if rows:
-        ests = [_get(r, "estimate") for r in rows if _get(r, "estimate") is not None]
-        agree = sum(1 for r in rows if _get(r, "ci_low") is not None
-                    and not (_get(r, "ci_low") <= null <= _get(r, "ci_high")))
-        if ests:
-            parts.append(f"Cross-check estimators range from {_fmt(min(ests))} to {_fmt(max(ests))}; "
-                         f"{agree} of {len(rows)} have a CI excluding the null.")
+        parts.append(f"E-value: {_fmt(e_point)} for the estimate and "
+                     f"{_fmt(_get(sensitivity.e_value, 'ci_limit'))} for the confidence limit "
+                     f"closer to the null.")
+    cross = _cross_check_sentence(cross_checks, measure, null)
+    if cross:
+        parts.append(cross)
     if negative_control is not None:
         parts.append(
             f"Negative-control outcome {negative_control.column!r}: adjusted 'effect' "
             f"{_fmt(negative_control.estimate.estimate)} (p {_fmt_p(negative_control.test.p_value)})"
             + ("; this is a residual-bias alarm." if negative_control.alarm else
                "; no sign of residual bias from this check."))
-    if excludes and rejects and balanced:
-        summary = ("In short: the gap survives adjustment for the measured covariates. ")
-    elif excludes and rejects:
-        summary = ("In short: the adjusted gap is statistically clear, but residual imbalance on "
-                   "measured covariates means it may still be partly confounding. ")
-    else:
-        summary = "In short: the data do not show that the gap survives adjustment. "
-    parts.append(summary + "This is observational evidence only: residual and unmeasured "
+    parts.append(_in_short(excludes, rejects, balanced, spec.alpha)
+                 + " This is observational evidence only: residual and unmeasured "
                  "confounding remain possible, it is not medical advice, and decisions belong to "
                  "licensed practice and local review boards.")
     return " ".join(parts)
+
+
+def _gamma_sentence(sensitivity) -> str:
+    detail = _get(sensitivity, "gamma_threshold_detail")
+    flag = _get(detail, "flag", "ok")
+    gamma = sensitivity.gamma_threshold
+    level = _fmt(sensitivity.gamma_level, 3)
+    if flag == NOT_SIGNIFICANT or gamma is None:
+        return (f"Without hidden bias (Γ = 1) the one-sided test is not significant at {level}, "
+                f"so there is no sensitivity threshold to report.")
+    if flag.startswith(">"):
+        return (f"The one-sided test stays significant at {level} for every Γ up to "
+                f"{_fmt(_get(detail, 'cap', gamma))}, the largest searched.")
+    return (f"An unmeasured confounder would have to change the odds of exposure within a stratum "
+            f"by a factor of Γ = {_fmt(gamma)} to make the one-sided test lose significance at "
+            f"{level}.")
+
+
+def _cross_check_sentence(cross_checks, measure, null) -> str | None:
+    rows = _get(cross_checks, "rows", cross_checks) or []
+    if not rows:
+        return None
+    code = measure_code(measure)
+    same = [r for r in rows if _get(r, "measure", "difference") == code]
+    other = len(rows) - len(same)
+    text = []
+    ests = [_get(r, "estimate") for r in same if _get(r, "estimate") is not None]
+    if ests:
+        excluding = sum(1 for r in same if _get(r, "ci_low") is not None
+                        and _get(r, "ci_high") is not None
+                        and not (_get(r, "ci_low") <= null <= _get(r, "ci_high")))
+        text.append(f"Cross-check estimators ({measure}) range from {_fmt(min(ests))} to "
+                    f"{_fmt(max(ests))}; {excluding} of {len(same)} have a CI excluding the null "
+                    f"value {null:g}.")
+    if other:
+        noun = "estimator is" if other == 1 else "estimators are"
+        text.append(f"{other} cross-check {noun} on the difference scale (see the cross-check "
+                    f"table) and {'is' if other == 1 else 'are'} not compared with the "
+                    f"{measure}'s null here.")
+    return " ".join(text) or None
+
+
+def _in_short(excludes, rejects, balanced, alpha) -> str:
+    if excludes and rejects and balanced:
+        return "In short: the gap survives adjustment for the measured covariates."
+    if excludes and rejects:
+        return ("In short: the adjusted gap is statistically clear, but residual imbalance on "
+                "measured covariates means it may still be partly confounding.")
+    if excludes:
+        return (f"In short: the data do not show that the gap survives adjustment: the adjusted "
+                f"CI excludes the null but the permutation test does not reject at {alpha:g}.")
+    if rejects:
+        return (f"In short: the data do not show that the gap survives adjustment: the "
+                f"permutation test rejects at {alpha:g} but the adjusted CI includes the null.")
+    return "In short: the data do not show that the gap survives adjustment."
