@@ -44,7 +44,9 @@ KNOT_QUANTILES = {3: (0.10, 0.50, 0.90), 4: (0.05, 0.35, 0.65, 0.95),
 #: Fewer distinct values than this, or fewer rows than SMALL_SAMPLE, gives 3 knots (our rule).
 FEW_DISTINCT = 20
 SMALL_SAMPLE = 100
-#: Rows from which a covariate gets 5 knots (our rule; see docs/validation.md for the measurement).
+#: Rows from which a covariate gets 5 knots (our rule). Measured (docs/validation.md): in the
+#: smooth-threshold null at n = 5,000 (ATE, 300 datasets) the default test rejected 18.3 % with
+#: 4 knots and 4.3 % with 5.
 FIVE_KNOTS_FROM = 1000
 
 
