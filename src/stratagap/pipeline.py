@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from .stratify import balance as _balance
+from .stratify.higher_order import higher_order_balance
 from .estimation import crosscheck as _crosscheck
 from . import data as _data
 from .estimation import effects as _effects
@@ -134,6 +135,8 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
     weights = _strata.unit_weights(labels, t, spec.estimand)
     balance = _balance.balance_table(X, t, terms, weights_after=weights,
                                      logit=propensity.logit[used])
+    balance = dataclasses.replace(balance, higher_order=higher_order_balance(
+        terms, t, labels, estimand=spec.estimand, seed=spec.seed))
     clock.lap("balance")
 
     layout = StratumLayout.build(labels, t, spec.estimand)  # one layout of the analysed rows
