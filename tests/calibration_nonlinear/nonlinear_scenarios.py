@@ -20,6 +20,7 @@ smooth_threshold_binary   as smooth_threshold                                   
 product (reported)        -0.5 + 0.6 x + 1.0 u + 1.5 x (u - 0.5) + G_e          x + u + 2 x (u - 0.5) + G_y + N(0, 1)
 sharp_step (reported)     -1.0 + 1.5 [x > 0.5] + 0.8 u + G_e                    1.5 [x > 0.5] + u + G_y + N(0, 1)
 heterogeneous             as quadratic                                          x + x^2 + u + G_y + t (1 + 0.5 x^2) + N(0, 1)
+heterogeneous_overlap     -0.8 + 0.4 x + 0.25 x^2 + 0.8 u + G_e                 as heterogeneous
 ========================  ====================================================  =============================================
 
 The product and the sharp step are not additive smooth functions of single covariates: additive
@@ -88,6 +89,8 @@ SCENARIOS = {
                    lambda r, x, u, gy, n: (1.5 * (x > 0.5) + u + gy + r.standard_normal(n),
                                            None)),
     "heterogeneous": (_quadratic_e, None),  # outcome drawn in make(): it needs t
+    "heterogeneous_overlap": (lambda x, u, ge: -0.8 + 0.4 * x + 0.25 * x ** 2 + 0.8 * u + ge,
+                              None),
 }
 ADDITIVE = ("quadratic", "exponential_binary", "smooth_threshold", "smooth_threshold_binary")
 REPORTED = ("product", "sharp_step")
@@ -98,7 +101,7 @@ def make(name: str, rng: np.random.Generator, n: int):
     lin_e, outcome = SCENARIOS[name]
     x, u, g, ge, gy = _confounders(rng, n)
     t = (rng.random(n) < expit(lin_e(x, u, ge))).astype(np.int8)
-    if name == "heterogeneous":
+    if name.startswith("heterogeneous"):
         tau = 1.0 + 0.5 * x ** 2
         y = x + x ** 2 + u + gy + t * tau + rng.standard_normal(n)
     else:
