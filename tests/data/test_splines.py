@@ -120,3 +120,11 @@ def test_formula_overrides_terms_and_bad_terms_value():
     assert p.design_names == ["age", "smoker"] and p.forms == ()
     with pytest.raises(InputError, match="`terms` must be 'spline' or 'linear'"):
         prepare(df, exposure="t", outcome="y", covariates=["age"], terms="cubic")
+
+
+def test_a_covariate_that_separates_the_groups_is_refused_by_name():
+    # a penalized spline score can overlap slightly where the covariates do not: refused first
+    df = _table()
+    df["t"] = (df["age"] > df["age"].median()).astype(int)
+    with pytest.raises(InputError, match="column 'age' separates the groups completely.*no overlap"):
+        prepare(df, exposure="t", outcome="y", covariates=["age", "smoker"])

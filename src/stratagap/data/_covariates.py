@@ -190,6 +190,7 @@ def build(frame: pd.DataFrame, covariates, formula, t, terms: str = "spline") ->
                 and (k == n or (k > 50 and k > 0.5 * n))):
             raise InputError(f"`--covariates` column '{c}' looks like an identifier ({k} distinct values in {n} rows); "
                              "remove it from the covariates (or group it into a few categories)")
+        _check_separation(c, s, t)
         why = _identifier_reason(c, s, frame.get("__row__"))
         if why:
             warnings.warn(f"covariate '{c}' looks like a row identifier ({why}); remove it "
@@ -328,6 +329,25 @@ def _formula_design(frame, formula):
             names.append(name)
     X = np.column_stack(cols) if cols else np.empty((len(frame), 0))
     return X, names, terms
+
+
+def _check_separation(name, s: pd.Series, t) -> None:
+    """Refuse a numeric covariate whose group ranges do not meet: no overlap is possible.
+
+    A penalized flexible score model can give such groups slightly overlapping scores, so the
+    score's overlap rule alone does not catch it.
+    """
+    if is_categorical(s) or s.nunique(dropna=True) < 3:
+        return
+    v = s.to_numpy(dtype=float, na_value=np.nan)
+    t = np.asarray(t)
+    v1, v0 = v[(t == 1) & np.isfinite(v)], v[(t == 0) & np.isfinite(v)]
+    if v1.size == 0 or v0.size == 0:
+        return
+    if v1.min() > v0.max() or v0.min() > v1.max():
+        raise InputError(f"`--covariates` column '{name}' separates the groups completely (exposed "
+                         f"{fmt(v1.min())} to {fmt(v1.max())}, reference {fmt(v0.min())} to "
+                         f"{fmt(v0.max())}): no overlap; remove it or rethink the comparison")
 
 
 #: Column names that usually hold record numbers (common practice; matched whole, any case).
