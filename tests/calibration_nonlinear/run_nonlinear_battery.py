@@ -33,7 +33,7 @@ from nonlinear_scenarios import ADDITIVE, COVARIATES, REPORTED, dataset_rng, mak
 ALPHA = 0.05
 #: Root seed of a cell: a fixed base plus stable offsets, so cells do not share datasets.
 ROOT = 2026_1100
-SCENARIO_ORDER = (*ADDITIVE, *REPORTED, "heterogeneous")
+SCENARIO_ORDER = (*ADDITIVE, *REPORTED, "heterogeneous", "heterogeneous_overlap")
 TERMS = ("spline", "linear")
 
 
