@@ -13,7 +13,8 @@ rejects in a cell more than ``binom.isf(0.001, M, 0.05)`` = 14 of 120 with proba
 reject 95-100 % of these datasets at n = 5,000 (docs/validation.md), so a default that
 reverted to linear terms fails every cell. The coverage floor for a 95 % CI over M datasets is
 ``binom.ppf(0.001, M, 0.95)`` = 106 of 120 (88.3 %); the default does not reach it yet under
-an effect quadratic in a confounder (a strict expected failure, see docs/validation.md).
+an effect quadratic in a confounder (an expected failure, not strict: at about 86 % it can
+pass the 88.3 % floor by chance; see docs/validation.md).
 """
 
 from __future__ import annotations
@@ -74,7 +75,7 @@ def test_headline_under_heterogeneous_effect_default_beats_linear(coverage_cell)
     assert spline["coverage"] > linear["coverage"] + 0.25
 
 
-@pytest.mark.xfail(strict=True, reason="known gap (docs/validation.md): the headline SE is about "
+@pytest.mark.xfail(strict=False, reason="known gap (docs/validation.md): the headline SE is about "
                    "25 % below the SD of the estimate under an effect quadratic in a confounder, "
                    "for spline and linear terms alike; coverage about 86 %")
 def test_headline_ci_coverage_under_heterogeneous_effect(coverage_cell):
