@@ -19,8 +19,9 @@ table). With many terms some exceed 0.1 by chance: an SMD's sampling SD is about
 ``PERMUTATIONS`` within-strata shuffles of the exposure (group sizes kept in each stratum,
 denominators held at the observed values).
 
-Cost: one ``(K, n) @ (n, B)`` product per batch of ``B`` shuffles for ``K`` terms; the shuffled
-weights take ``8 n B`` bytes (B = 50: 40 MB at n = 100,000).
+Cost: one ``(K, n) @ (n, B)`` product per batch of ``B`` shuffles for ``K`` terms, and a sort of
+``B x n_s`` random keys per stratum; the shuffled weights take ``8 n B`` bytes, with ``B = 50``
+up to n = 167,772 and smaller beyond (at most 64 MiB).
 
 References
 ----------
@@ -46,6 +47,8 @@ PERMUTATIONS = 200
 #: |SMD| threshold (common practice; Austin 2009).
 THRESHOLD = 0.1
 _BATCH = 50
+#: At most this many floats of shuffled weights at once (64 MiB), so large n takes smaller batches.
+_BATCH_FLOATS = 2 ** 23
 _WORST = 5
 
 
@@ -156,8 +159,9 @@ def higher_order_balance(balance_terms, t, labels, *, estimand: str, seed: int) 
     rng = substream(seed, "higher-order balance")
     blocks = [np.flatnonzero(labels == s_) for s_ in range(S)]
     maxima = []
-    for start in range(0, PERMUTATIONS, _BATCH):
-        B = min(_BATCH, PERMUTATIONS - start)
+    batch = max(1, min(_BATCH, _BATCH_FLOATS // n))  # depends on n only: same data, same draws
+    for start in range(0, PERMUTATIONS, batch):
+        B = min(batch, PERMUTATIONS - start)
         A = np.empty((n, B))
         for s_, idx in enumerate(blocks):  # shuffle within each stratum: its group sizes are kept
             keys = rng.random((B, idx.size))
