@@ -26,6 +26,17 @@ def test_analyze_writes_outputs_and_summary(shift_csv, tmp_path, capsys):
                       "ks_before,ks_after,flagged")
 
 
+def test_terms_flag_and_the_terms_line(shift_csv, capsys):
+    assert main(["analyze", str(shift_csv), *ARGS]) == 0
+    assert "terms: spline(age, 5 knots); spline(bmi, 5 knots)" in capsys.readouterr().out
+    assert main(["analyze", str(shift_csv), *ARGS, "--terms", "linear", "--format", "json"]) == 0
+    data = json.loads(capsys.readouterr().out)
+    assert [t["label"] for t in data["covariates"]["terms"]] == ["linear(age)", "linear(bmi)"]
+    assert data["spec"]["terms"] == "linear" and "age: spline 1" not in data["covariates"]["design_columns"]
+    assert main(["analyze", str(shift_csv), *ARGS, "--terms", "cubic"]) == 2
+    assert "`--terms` must be one of spline, linear" in capsys.readouterr().err
+
+
 def test_analyze_refuses_non_empty_out_then_overwrites(shift_csv, tmp_path, capsys):
     out = tmp_path / "o"
     assert main(["analyze", str(shift_csv), *ARGS, "--out", str(out), "--quiet"]) == 0

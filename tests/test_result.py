@@ -100,7 +100,8 @@ def test_prepared_summary_is_typed(small_result):
     p = small_result.prepared_summary
     assert isinstance(p, PreparedSummary) and p.n_used == small_result.n_used
     assert small_result.to_dict()["covariates"] == {"covariates": p.covariates,
-                                                    "design_columns": p.design_columns}
+                                                    "design_columns": p.design_columns,
+                                                    "terms": p.covariate_terms}
 
 
 def test_heterogeneity_undefined_with_one_usable_stratum():

@@ -17,6 +17,7 @@ def test_defaults_and_comma_separated_covariates():
     assert s.covariates == ("age", "bmi")
     assert (s.estimand, s.n_strata, s.resamples, s.alternative, s.statistic) == (
         "ate", 5, 10_000, "two-sided", "adjusted")
+    assert s.terms == "spline"  # issue 11: flexible terms by default
 
 
 @pytest.mark.parametrize("kw, match", [
@@ -37,6 +38,7 @@ def test_defaults_and_comma_separated_covariates():
     ({"truncate_weights": "99,1"}, "`truncate_weights`"),
     ({"covariates": ""}, "`covariates`"),
     ({"engine": "gpu"}, "`engine`"),
+    ({"terms": "cubic"}, "`terms`"),
     ({"measure": "rr", "outcome_type": "continuous"}, "`measure=rr`"),
 ])
 def test_absurd_arguments_name_the_option(kw, match):

@@ -51,6 +51,8 @@ _OPTIONS = [
     ("--covariates", "covariates", str, "comma-separated measured confounders"),
     ("--formula", "formula", str, "score-model right-hand side in Wilkinson notation, e.g. "
      "'age + I(age**2) + C(role)'; used for balance checks too"),
+    ("--terms", "terms", str, "continuous covariates as spline (default, natural cubic "
+     "splines) or linear terms; --formula overrides"),
     ("--exposed-value", "exposed_value", str, "value of --exposure that marks the exposed group"),
     ("--outcome-type", "outcome_type", str, "auto (default), binary or continuous"),
     ("--outcome-event", "outcome_event", str, "value of a two-valued outcome counted as the event"),

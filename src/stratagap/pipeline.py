@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from .stratify import balance as _balance
+from .stratify.higher_order import higher_order_balance
 from .estimation import crosscheck as _crosscheck
 from . import data as _data
 from .estimation import effects as _effects
@@ -101,7 +102,8 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
         exposed_value=spec.exposed_value, outcome_type=spec.outcome_type,
         outcome_event=spec.outcome_event, formula=spec.formula, missing=spec.missing,
         strata_column=spec.strata_column, negative_control=spec.negative_control,
-        censoring_weights=spec.censoring_weights, pool_rare_levels=spec.pool_rare_levels)
+        censoring_weights=spec.censoring_weights, pool_rare_levels=spec.pool_rare_levels,
+        terms=spec.terms)
     clock.lap("data")
     binary = prepared.outcome_type == "binary"
     if spec.measure != "difference" and not binary:
@@ -151,6 +153,8 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
                                          logit=propensity.logit[used])
     else:  # before: every unit offered to the matching; after: the matched sample
         balance = _matching.matched_balance(prepared, keep, used, weights, propensity.logit)
+    balance = dataclasses.replace(balance, higher_order=higher_order_balance(
+        terms, t, labels, estimand=spec.estimand, seed=spec.seed))
     clock.lap("balance")
 
     layout = StratumLayout.build(labels, t, spec.estimand)  # one layout of the analysed rows
@@ -160,7 +164,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
     adjusted = _effects.stratified_regression(
         y, t, X, labels, estimand=spec.estimand, measure=headline_measure, alpha=spec.alpha,
         interaction_min_extra=spec.interaction_min_extra, population=population,
-        names=prepared.design_names)
+        names=prepared.design_names, n_linear=prepared.n_linear)
     plain = _effects.plain_stratified_difference(y, t, labels, estimand=spec.estimand,
                                                  alpha=spec.alpha, population=population)
     constant = None
@@ -177,7 +181,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
         risk_ratio = adjusted if headline_measure == "rr" else _effects.stratified_regression(
             y, t, X, labels, estimand=spec.estimand, measure="rr", alpha=spec.alpha,
             interaction_min_extra=spec.interaction_min_extra, population=population,
-            names=prepared.design_names)
+            names=prepared.design_names, n_linear=prepared.n_linear)
     clock.lap("effects")
 
     cross = _crosscheck.cross_checks(y, t, X, estimand=spec.estimand, alpha=spec.alpha,
@@ -199,7 +203,8 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
     clock.lap("heterogeneity")
 
     sensitivity = _sensitivity.sensitivity_analysis(
-        tests["values"], t, labels, X, y, terms, test=tests["main"],
+        # benchmarks swap one covariate's column: the linear design, one column per covariate
+        tests["values"], t, labels, X[:, :prepared.n_linear], y, terms, test=tests["main"],
         statistic="sum" if spec.statistic == "sum" else "mean_difference",
         estimand=spec.estimand, alternative=spec.alternative, alpha=spec.alpha,
         gammas=spec.gamma_grid, adjusted=adjusted, risk_ratio=risk_ratio, binary=binary,
@@ -209,7 +214,8 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
         prepared.negative_control[used], t, X, labels, column=spec.negative_control,
         names=prepared.design_names, estimand=spec.estimand, alpha=spec.alpha,
         engine=spec.engine, resamples=spec.resamples, seed=spec.seed,
-        batch_size=spec.batch_size, interaction_min_extra=spec.interaction_min_extra)
+        batch_size=spec.batch_size, interaction_min_extra=spec.interaction_min_extra,
+        n_linear=prepared.n_linear)
     clock.lap("negative_control")
     flow = ParticipantFlow.from_stages(prepared.flow, trimmed_by_group=overlap.set_aside,
                                        strata_set_aside_by_group=getattr(strata, "set_aside", {})
@@ -286,7 +292,8 @@ def _prepared_summary(prepared, used) -> PreparedSummary:
                            exposure_levels=dict(prepared.exposure_levels),
                            outcome_levels=getattr(prepared, "outcome_levels", None),
                            covariates=list(prepared.covariates),
-                           design_columns=list(prepared.design_names), n_used=int(len(used)))
+                           design_columns=list(prepared.design_names), n_used=int(len(used)),
+                           covariate_terms=[f.to_dict() for f in prepared.forms])
 
 
 class _StageClock:

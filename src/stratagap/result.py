@@ -137,6 +137,8 @@ class PreparedSummary:
     covariates: list
     design_columns: list
     n_used: int
+    #: how each continuous covariate entered ("spline(age, 4 knots)" with the knots, or linear)
+    covariate_terms: list = field(default_factory=list)
 
 
 @dataclass(frozen=True)
@@ -237,7 +239,8 @@ class AnalysisResult:
             "n_used": self.n_used,
             "flow": self.flow,
             "covariates": {"covariates": prepared.covariates,
-                           "design_columns": prepared.design_columns},
+                           "design_columns": prepared.design_columns,
+                           "terms": prepared.covariate_terms},
             "propensity": jsonable(self.propensity),
             "overlap": jsonable(self.overlap),
             "strata": strata.get("table", []),

@@ -40,6 +40,8 @@ SCORE_MODELS = ("logistic", "boosting")
 STRATA_METHODS = ("quantile", "adaptive")
 MISSING_POLICIES = ("drop", "error", "indicator")
 OUTCOME_TYPES = ("auto", "binary", "continuous")
+#: How continuous covariates enter every model: a natural cubic spline each, or one linear term.
+TERMS = ("spline", "linear")
 MAX_RESAMPLES = 10_000_000
 DESIGNS = ("strata", "match")
 MATCHING_FIELDS = ("design", "per_exposed", "caliper_sd", "same_value_on")
@@ -53,6 +55,7 @@ class AnalysisSpec:
     outcome: str
     covariates: tuple[str, ...] | None = None
     formula: str | None = None
+    terms: str = "spline"
     exposed_value: str | None = None
     outcome_type: str = "auto"
     outcome_event: str | None = None
@@ -149,6 +152,7 @@ def _check(spec: AnalysisSpec) -> None:
     _choice(spec.strata_method, STRATA_METHODS, "strata_method")
     _choice(spec.missing, MISSING_POLICIES, "missing")
     _choice(spec.outcome_type, OUTCOME_TYPES, "outcome_type")
+    _choice(spec.terms, TERMS, "terms")
     set_(spec, "n_strata", _int_in(spec.n_strata, 1, 1000, "n_strata"))
     set_(spec, "min_per_group", _int_in(spec.min_per_group, 1, 10_000, "min_per_group"))
     set_(spec, "folds", _int_in(spec.folds, 2, 50, "folds"))

@@ -299,7 +299,9 @@ def test_datetime_outcome_is_error_and_time_to_event_warns():
 # ----------------------------------------------------------------------------- covariates
 def test_categorical_one_hot_with_sorted_reference():
     df = invented()
-    p = prepare(df, exposure="shift", outcome="sbp", covariates=["age", "site", "smoker"])
+    # the linear coding (terms="linear"); spline columns are tested in test_splines.py
+    p = prepare(df, exposure="shift", outcome="sbp", covariates=["age", "site", "smoker"],
+                terms="linear")
     assert p.design_names == ["age", "site: north", "site: south", "smoker"]
     assert p.reference_levels == {"site": "east"}  # first in sorted order
     assert np.array_equal(p.X[:, 1], (p.raw["site"] == "north").to_numpy(float))
@@ -319,7 +321,7 @@ def test_constant_covariate_dropped_with_warning():
     df = invented()
     df["plant"] = "A"
     with pytest.warns(DataWarning, match="covariate 'plant' is constant"):
-        p = prepare(df, exposure="shift", outcome="sbp", covariates=["age", "plant"])
+        p = prepare(df, exposure="shift", outcome="sbp", covariates=["age", "plant"], terms="linear")
     assert p.covariates == ["age"] and p.design_names == ["age"]
 
 
@@ -347,7 +349,8 @@ def test_collinear_columns_dropped_with_warning():
     df = invented()
     df["age_months"] = df["age"] * 12
     with pytest.warns(DataWarning, match="'age_months' is a linear combination"):
-        p = prepare(df, exposure="shift", outcome="sbp", covariates=["age", "age_months", "smoker"])
+        p = prepare(df, exposure="shift", outcome="sbp", covariates=["age", "age_months", "smoker"],
+                    terms="linear")
     assert p.design_names == ["age", "smoker"] and p.dropped_design_columns == ["age_months"]
     term = [t for t in p.terms if t.name == "age_months"][0]
     assert term.column is None and np.allclose(term.values, 12 * p.raw["age"])
@@ -437,7 +440,8 @@ def test_missing_error_policy():
 def test_missing_indicator_policy():
     df = with_gaps()
     with pytest.warns(MissingDataWarning, match="Groenwold et al. 2012, CMAJ"):
-        p = prepare(df, exposure="shift", outcome="sbp", covariates=["age", "site"], missing="indicator")
+        p = prepare(df, exposure="shift", outcome="sbp", covariates=["age", "site"], missing="indicator",
+                    terms="linear")
     assert p.flow.rows_used == 200 - 3  # only exposure/outcome missing rows dropped
     assert p.flow.dropped_missing_by_column == {"shift": 1, "sbp": 2}
     assert p.design_names == ["age", "age: (missing)", "site: east", "site: north", "site: south"]
@@ -457,7 +461,9 @@ def test_missing_outcome_share_warning_and_censoring_weights():
     lost = rng.random(2000) < np.where(df["shift"] == 1, 0.20, 0.05)
     df.loc[lost, "sbp"] = np.nan
     with pytest.warns(MissingDataWarning, match="complete-case analysis may be biased.*censoring_weights"):
-        p = prepare(df, exposure="shift", outcome="sbp", covariates=["age", "smoker"], censoring_weights=True)
+        # terms="linear": the reference below is the linear logistic model
+        p = prepare(df, exposure="shift", outcome="sbp", covariates=["age", "smoker"], censoring_weights=True,
+                    terms="linear")
     assert p.flow.missing_outcome_p_value < 1e-6
     # Independent IPCW (Hernán & Robins 2020, What If §12.6): logistic model of observed ~ L + A.
     Z = sm.add_constant(df[["age", "smoker", "shift"]].to_numpy(float))

@@ -560,3 +560,44 @@ def test_crude_ratio_equals_statsmodels_table2x2(measure):
     assert got.estimate == pytest.approx(ref, rel=1e-12)
     assert (got.ci_low, got.ci_high) == pytest.approx((lo, hi), rel=1e-10)
     assert got.measure == {"rr": "risk ratio", "or": "odds ratio"}[measure]
+
+
+def test_spline_ladder_guard_of_ten_units_per_column():
+    # Columns 0-1 linear, 2-3 spline columns (n_linear=2): 4 columns in all.
+    rng = np.random.default_rng(15)
+    n = 200
+    x = rng.normal(size=(n, 4))
+    labels = np.repeat([0, 1, 2], [100, 60, 40]).astype(np.int64)
+    t = np.zeros(n, dtype=np.int8)
+    t[:40] = 1     # stratum 0: 40 exposed, 60 reference >= 10 x 4: interacted splines
+    t[100:125] = 1  # stratum 1: 25 exposed < 40, 60 units in all >= 40: main-effect splines
+    t[160:175] = 1  # stratum 2: 15 exposed, 40 units = 10 x 4 in all: main-effect splines
+    y = x[:, 0] + t + rng.normal(size=n)
+    res = effects.stratified_regression(y, t, x, labels, estimand="att", n_linear=2,
+                                        names=["a", "b", "a: spline 1", "b: spline 1"])
+    s0, s1, s2 = res.per_stratum
+    assert s0["model"] == "interactions" and s0["reason"] == "all checks passed"
+    assert s1["model"] == "main effects" and "interacted splines need >= 40" in s1["reason"]
+    assert s2["model"] == "main effects"
+    assert res.settings["spline_units_per_column"] == 10
+    # the interacted fit is Lin's on all four columns, centred at the exposed mean (ATT)
+    m = labels == 0
+    Xc = x[m] - x[m][t[m] == 1].mean(axis=0)
+    D = np.column_stack([np.ones(m.sum()), t[m], Xc, t[m][:, None] * Xc])
+    assert s0["estimate"] == pytest.approx(np.linalg.lstsq(D, y[m], rcond=None)[0][1], abs=1e-10)
+    # fewer than 40 units in a stratum: the linear ladder on the first two columns, and a warning
+    small = labels == 2
+    with pytest.warns(ModelWarning, match="simplified"):
+        r2 = effects.stratified_regression(y[small][:30], t[small][:30], x[small][:30],
+                                           np.zeros(30, np.int64), estimand="ate", n_linear=2,
+                                           names=["a", "b", "a: spline 1", "b: spline 1"])
+    row = r2.per_stratum[0]
+    assert row["model"] == "linear interactions" and row["covariates"] == ["a", "b"]
+    assert "splines need >= 40 units" in row["reason"]
+    lin = effects.stratified_regression(y[small][:30], t[small][:30], x[small][:30, :2],
+                                        np.zeros(30, np.int64), estimand="ate")
+    assert row["estimate"] == pytest.approx(lin.estimate, abs=1e-12)
+    # with no spline columns the ladder is unchanged (n_linear = p)
+    same = effects.stratified_regression(y, t, x, labels, estimand="att", n_linear=4)
+    base = effects.stratified_regression(y, t, x, labels, estimand="att")
+    assert same.estimate == base.estimate

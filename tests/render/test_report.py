@@ -28,6 +28,7 @@ from stratagap.render.report import (FIGURES, baseline_latex, baseline_markdown,
                               plot_stratum_effects, plot_tipping, render_html, write_report)
 from stratagap.render.report._style import ResultView, figure_bytes
 from stratagap.render.report.html import CSP
+from stratagap.render.formatting import format_value
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -650,3 +651,11 @@ def test_baseline_crude_header_says_after_trimming():
     assert crude_label(view.data) == "Std. difference, crude"
     view.data["flow"]["trimmed_by_group"] = {"exposed": 0, "reference": 12}
     assert crude_label(view.data) == "Std. difference, crude (after trimming)"
+
+
+def test_report_says_which_terms_with_knots(report_folder, demo_result):
+    text = (report_folder[0] / "report.html").read_text("utf-8")
+    forms = demo_result.prepared_summary.covariate_terms
+    assert forms and forms[0]["form"] == "spline"
+    knots = ", ".join(format_value(k) for k in forms[0]["knots"])
+    assert f"<dt>Terms</dt><dd>{forms[0]['label']} at {knots}" in text

@@ -24,6 +24,7 @@ import numpy as np
 import pandas as pd
 
 from ..errors import DataWarning, InputError, MissingDataWarning
+from . import _splines
 
 MISSING_LEVEL = "(missing)"
 
@@ -56,6 +57,11 @@ class Design(NamedTuple):
     covariates: list
     reference_levels: dict
     dropped: list
+    #: the first ``n_linear`` columns of ``X`` are the linear design (one column per numeric
+    #: covariate, the dummies); spline columns follow them
+    n_linear: int = 0
+    #: how each numeric covariate entered (:class:`SplineTerm`); empty for a formula
+    forms: tuple = ()
 
 
 def level_label(covariate, level) -> str:
@@ -165,8 +171,13 @@ def fill_missing(frame: pd.DataFrame, covariates, formula, missing):
     return frame, formula
 
 
-def build(frame: pd.DataFrame, covariates, formula, t) -> Design:
-    """Design matrix, names and balance terms for the analysed rows in ``frame``."""
+def build(frame: pd.DataFrame, covariates, formula, t, terms: str = "spline") -> Design:
+    """Design matrix, names and balance terms for the analysed rows in ``frame``.
+
+    ``terms="spline"`` adds natural cubic spline columns for each continuous numeric covariate
+    after the linear design (see :mod:`._splines`); ``"linear"`` keeps one column per
+    covariate. A formula overrides both.
+    """
     n = len(frame)
     kept, constant = [], []
     for c in covariates:
@@ -183,6 +194,7 @@ def build(frame: pd.DataFrame, covariates, formula, t) -> Design:
         if is_categorical(s) and not pd.api.types.is_bool_dtype(s) and identifier_levels(k, n):
             raise InputError(f"`covariates` column '{c}' looks like an identifier ({k} distinct values in {n} rows); "
                              "remove it from the covariates (or group it into a few categories)")
+        _check_separation(c, s, t)
         why = _identifier_reason(c, s, frame.get("__row__"))
         if why:
             warnings.warn(f"covariate '{c}' looks like a row identifier ({why}); remove it "
@@ -191,11 +203,19 @@ def build(frame: pd.DataFrame, covariates, formula, t) -> Design:
     if not kept:
         raise InputError("no covariates are left after dropping constant ones "
                          f"({', '.join(map(repr, constant))}); name covariates that vary")
+    forms = ()
     if formula is not None:
-        X, names, terms = _formula_design(frame, formula)
-        refs = {}
+        X, names, bterms = _formula_design(frame, formula)
+        refs, n_linear = {}, X.shape[1]
     else:
-        X, names, terms, refs = _plain_design(frame, kept)
+        X, names, bterms, refs = _plain_design(frame, kept)
+        n_linear = X.shape[1]
+        if terms == "spline":
+            X, names, forms = _add_splines(frame, X, names, bterms)
+        else:
+            forms = tuple(_splines.SplineTerm(tm.covariate, "linear") for tm in bterms
+                          if tm.level is None and tm.kind == "continuous" and tm.column is not None)
+    terms = bterms
     bad = ~np.isfinite(X).all(axis=0)
     if bad.any():
         j = int(np.flatnonzero(bad)[0])
@@ -214,11 +234,42 @@ def build(frame: pd.DataFrame, covariates, formula, t) -> Design:
                          None if tm.column is None or not keep[tm.column] else int(new_index[tm.column]), tm.values)
              for tm in terms if tm.column is None or not const[tm.column]]
     X = np.ascontiguousarray(X[:, keep])
+    n_linear = int(keep[:n_linear].sum())
     if X.shape[1] == 0:
         raise InputError("no usable design columns remain (all constant or collinear); name covariates that vary")
     terms = [tm if tm.column is None else BalanceTerm(tm.name, tm.covariate, tm.level, tm.kind, tm.column,
                                                       X[:, tm.column]) for tm in terms]
-    return Design(X, [n_ for n_, k in zip(names, keep) if k], terms, kept, refs, dropped)
+    return Design(X, [n_ for n_, k in zip(names, keep) if k], terms, kept, refs, dropped,
+                  n_linear, forms)
+
+
+def _add_splines(frame, X, names, bterms):
+    """Append each continuous covariate's nonlinear spline columns after the linear design.
+
+    Knots come from the covariate's observed values (rows a missing indicator marks are left
+    out, their filled 0 is not a measurement); a covariate whose knots collapse warns by name.
+    """
+    cols, new_names, forms = [], [], []
+    for tm in bterms:
+        if tm.level is not None or tm.kind != "continuous" or tm.column is None:
+            continue
+        x = X[:, tm.column]
+        ind = f"{tm.covariate}__missing"
+        observed = x if ind not in frame.columns else x[frame[ind].to_numpy() == 0]
+        knots, note = _splines.choose_knots(observed, len(x))
+        if note:
+            warnings.warn(f"covariate '{tm.covariate}': {note}; use `formula` to choose its terms",
+                          DataWarning, stacklevel=4)
+        if not knots:
+            forms.append(_splines.SplineTerm(tm.covariate, "linear", (), note))
+            continue
+        forms.append(_splines.SplineTerm(tm.covariate, "spline", knots, note))
+        extra = _splines.nonlinear_columns(x, knots)
+        cols.append(extra)
+        new_names.extend(f"{tm.covariate}: spline {j + 1}" for j in range(extra.shape[1]))
+    if cols:
+        X = np.column_stack([X, *cols])
+    return X, names + new_names, tuple(forms)
 
 
 def _plain_design(frame, covariates):
@@ -282,6 +333,25 @@ def _formula_design(frame, formula):
             names.append(name)
     X = np.column_stack(cols) if cols else np.empty((len(frame), 0))
     return X, names, terms
+
+
+def _check_separation(name, s: pd.Series, t) -> None:
+    """Refuse a numeric covariate whose group ranges do not meet: no overlap is possible.
+
+    A penalized flexible score model can give such groups slightly overlapping scores, so the
+    score's overlap rule alone does not catch it.
+    """
+    if is_categorical(s) or s.nunique(dropna=True) < 3:
+        return
+    v = s.to_numpy(dtype=float, na_value=np.nan)
+    t = np.asarray(t)
+    v1, v0 = v[(t == 1) & np.isfinite(v)], v[(t == 0) & np.isfinite(v)]
+    if v1.size == 0 or v0.size == 0:
+        return
+    if v1.min() > v0.max() or v0.min() > v1.max():
+        raise InputError(f"`covariates` column '{name}' separates the groups completely (exposed "
+                         f"{fmt(v1.min())} to {fmt(v1.max())}, reference {fmt(v0.min())} to "
+                         f"{fmt(v0.max())}): no overlap; remove it or rethink the comparison")
 
 
 #: Column names that usually hold record numbers (common practice; matched whole, any case).

@@ -108,6 +108,10 @@ class PreparedData:
     dropped_design_columns: list = field(default_factory=list)
     strata_levels: list | None = None
     row_ids: np.ndarray | None = None
+    #: the first ``n_linear`` columns of ``X`` are the linear design; spline columns follow
+    n_linear: int | None = None
+    #: how each continuous covariate entered (``SplineTerm``: spline with knots, or linear)
+    forms: tuple = ()
 
     def to_dict(self) -> dict:
         """JSON-ready summary (no per-row arrays)."""
@@ -122,12 +126,14 @@ class PreparedData:
             "strata_levels": None if self.strata_levels is None else list(self.strata_levels),
             "censoring_weights": self.censoring_weights is not None,
             "flow": self.flow.to_dict(),
+            "covariate_terms": [f.to_dict() for f in self.forms],
         }
 
 
 def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome_type="auto",
             formula=None, missing="drop", strata_column=None, negative_control=None,
-            outcome_event=None, censoring_weights=False, pool_rare_levels=False) -> PreparedData:
+            outcome_event=None, censoring_weights=False, pool_rare_levels=False,
+            terms="spline") -> PreparedData:
     """Check and code the analysed columns of ``table``.
 
     Parameters
@@ -161,6 +167,10 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     pool_rare_levels : bool
         Pool the levels of a categorical covariate with fewer than 10 rows into one level;
         without it a covariate with too many levels is refused (:mod:`._levels`).
+    terms : {"spline", "linear"}, default "spline"
+        How continuous covariates enter ``X``: a natural cubic spline each (knots by Harrell's
+        quantile rule, see :mod:`stratagap.data._splines`; the spline columns follow the linear
+        design, whose width is ``n_linear``), or one linear column each. ``formula`` overrides.
 
     Returns
     -------
@@ -178,6 +188,8 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
         raise InputError(f"the table has duplicate column names ({', '.join(dup)}); rename them so each is unique")
     if len(table) == 0:
         raise InputError("the table has no rows; check the input file or the row filter")
+    if terms not in ("spline", "linear"):
+        raise InputError(f"`terms` must be 'spline' or 'linear'; got {terms!r}")
     if missing not in ("drop", "error", "indicator"):
         raise InputError(f"`missing` must be drop, error or indicator, got {missing!r}")
     if outcome_type not in ("auto", "binary", "continuous"):
@@ -253,7 +265,7 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     if censoring_weights:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
-            Xc = _design.build(filled, covariates, formula_used, cand["__t__"].to_numpy()).X
+            Xc = _design.build(filled, covariates, formula_used, cand["__t__"].to_numpy(), terms).X
         cw = observed_weights(Xc, cand["__t__"].to_numpy(), keep)[keep]
         cs = exposure_score_all_rows(Xc, cand["__t__"].to_numpy())
         cs = None if cs is None else cs[keep]
@@ -270,7 +282,7 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     if out_type == "binary" and len(set(zip(y.tolist(), t.tolist()))) == 2:
         raise InputError(f"`outcome` column '{outcome}' is the exposure recoded (its two values match "
                          "the groups exactly); choose the outcome column")
-    design = _design.build(work, covariates, formula_used, t)
+    design = _design.build(work, covariates, formula_used, t, terms)
 
     strata = strata_levels = None
     if strata_column is not None:
@@ -291,7 +303,8 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
         negative_control=nc, outcome_levels=out_levels, censoring_weights=cw, censoring_score=cs, exposure=exposure,
         outcome=outcome, formula=formula_used, reference_levels=design.reference_levels,
         dropped_design_columns=design.dropped, strata_levels=strata_levels,
-        row_ids=work["__row__"].to_numpy().astype(np.int64))
+        row_ids=work["__row__"].to_numpy().astype(np.int64), n_linear=design.n_linear,
+        forms=design.forms)
 
 
 def exposure_score_all_rows(X, t) -> np.ndarray | None:

@@ -36,6 +36,11 @@ import numpy as np
 
 from .._base.linalg import COLLINEAR_TOL, LEVERAGE_TOL, hc2_ols, ordered_independent_columns
 
+#: Overfitting guard with spline columns: units per design column (each group for the interacted
+#: model, the stratum for main effects). Common practice: about 10 observations per parameter
+#: (Harrell 2015, section 4.4, from memory).
+SPLINE_UNITS_PER_COLUMN = 10
+
 
 def _screen_columns(Xc: np.ndarray, t: np.ndarray, names):
     """Drop constant, near-constant (single odd unit) and collinear columns; scale the rest."""
@@ -96,8 +101,55 @@ def difference_of_means(y: np.ndarray, t: np.ndarray):
     return a, tau, cov, note
 
 
-def fit_stratum(y, t, X, *, estimand: str, min_extra: int, names):
-    """Fit one stratum. Returns a dict: a, tau, cov (2x2 of (a, tau)), model, reason, columns."""
+def fit_stratum(y, t, X, *, estimand: str, min_extra: int, names, n_linear=None):
+    """Fit one stratum. Returns a dict: a, tau, cov (2x2 of (a, tau)), model, reason, columns.
+
+    ``n_linear``: the first ``n_linear`` columns of ``X`` are the linear design and the rest
+    spline columns (None: all linear). With spline columns the ladder is the overfitting guard
+    of :data:`SPLINE_UNITS_PER_COLUMN`: interacted splines when each group has that many units
+    per column kept; else main-effect splines when the stratum has that many units per column;
+    else the linear ladder (interactions, main effects) on the linear columns; else the
+    difference of means.
+    """
+    n_linear = X.shape[1] if n_linear is None else int(n_linear)
+    if n_linear >= X.shape[1]:
+        return _fit_ladder(y, t, X, estimand=estimand, min_extra=min_extra, names=names)
+    n = len(y)
+    n1 = int(t.sum())
+    n0 = n - n1
+    tf = t.astype(float)
+    centre = X.mean(axis=0) if estimand == "ate" else X[t == 1].mean(axis=0)
+    keep, Z, notes = _screen_columns(X - centre, tf, names)
+    p = Z.shape[1]
+    k = SPLINE_UNITS_PER_COLUMN
+    tried = []
+    if p and n1 >= k * p and n0 >= k * p:
+        tried.append("interactions")
+    elif p and n >= k * p:
+        notes.append(f"interacted splines need >= {k * p} units of each group ({k} per column, "
+                     f"{p} columns); found {n1} exposed, {n0} reference")
+        tried.append("main effects")
+    elif p:
+        notes.append(f"splines need >= {k * p} units ({k} per column, {p} columns); found {n}")
+    for model in tried:
+        cols = [np.ones(n), tf, Z] + ([tf[:, None] * Z] if model == "interactions" else [])
+        beta, cov, why = hc2_ols(np.column_stack(cols), y)
+        if beta is not None:
+            return {"a": float(beta[0]), "tau": float(beta[1]), "cov": cov[:2, :2],
+                    "model": model, "reason": "; ".join(notes) or "all checks passed",
+                    "columns": [names[j] for j in keep]}
+        notes.append(f"{model}: {why}")
+    fit = _fit_ladder(y, t, X[:, :n_linear], estimand=estimand, min_extra=min_extra,
+                      names=names[:n_linear])
+    if fit["model"] != "difference of means":
+        fit["model"] = "linear " + fit["model"]
+    fit["reason"] = "; ".join(notes + ([] if fit["reason"] == "all checks passed"
+                                       else [fit["reason"]]))
+    return fit
+
+
+def _fit_ladder(y, t, X, *, estimand: str, min_extra: int, names):
+    """The ladder of the module docstring on the columns of ``X``."""
     n = len(y)
     n1 = int(t.sum())
     n0 = n - n1

@@ -145,7 +145,7 @@ def _crude_ratio(y1, y0, measure, alpha) -> Estimate:
 # --------------------------------------------------------------------------- headline
 def stratified_regression(y, t, X, labels, *, estimand, measure="difference", alpha=0.05,
                           interaction_min_extra=2, population=None, outcome_type=None,
-                          names=None, layout=None) -> StratifiedEstimate:
+                          names=None, layout=None, n_linear=None) -> StratifiedEstimate:
     """Subclassification with regression adjustment within strata (the headline estimate).
 
     Parameters
@@ -173,6 +173,10 @@ def stratified_regression(y, t, X, labels, *, estimand, measure="difference", al
     layout : :class:`stratagap._base.layout.StratumLayout`, optional
         The caller's layout of the rows with ``labels >= 0`` for ``estimand`` (its weights are
         used); None builds it here.
+    n_linear : int, optional
+        The first ``n_linear`` columns of ``X`` are the linear design and the rest spline
+        columns; the spline columns enter under an overfitting guard of 10 units per column
+        (see :mod:`stratagap.estimation._within_strata`). None: every column is linear.
 
     Returns
     -------
@@ -223,7 +227,8 @@ def stratified_regression(y, t, X, labels, *, estimand, measure="difference", al
     for s in ids:
         m = labels == s
         fits.append(_lin.fit_stratum(y[m], t[m], X[m], estimand=estimand,
-                                     min_extra=int(interaction_min_extra), names=names))
+                                     min_extra=int(interaction_min_extra), names=names,
+                                     n_linear=n_linear))
     tau = np.array([f["tau"] for f in fits])
     a = np.array([f["a"] for f in fits])
     covs = np.array([f["cov"] for f in fits])
@@ -242,8 +247,11 @@ def stratified_regression(y, t, X, labels, *, estimand, measure="difference", al
         if f["reason"] != "all checks passed":
             choices.append(f"stratum {int(s)}: {f['model']} ({f['reason']})")
     # dropping constant or collinear columns leaves the fit unchanged: recorded, not warned
+    # with spline columns, main-effect splines are a planned rung of the overfitting guard
+    planned = ("interactions",) if n_linear is None or n_linear >= X.shape[1] else (
+        "interactions", "main effects")
     simplified = [(s, f) for s, f in zip(ids, fits)
-                  if f["model"] != "interactions" and X.shape[1] > 0]
+                  if f["model"] not in planned and X.shape[1] > 0]
     if simplified and not matched:
         listing = "; ".join(f"stratum {int(s)}: {f['model']}" for s, f in simplified[:5])
         warnings.warn(f"stratified regression simplified the outcome model in {len(simplified)} "
@@ -281,6 +289,7 @@ def stratified_regression(y, t, X, labels, *, estimand, measure="difference", al
     if measure != "difference":
         method += "; ratio of standardized (marginal) risks, delta method on the log scale"
     settings = {"interaction_min_extra": int(interaction_min_extra),
+                "spline_units_per_column": _lin.SPLINE_UNITS_PER_COLUMN,
                 "leverage_tolerance": _lin.LEVERAGE_TOL, "matched_set_max": MATCHED_SET_MAX,
                 "estimand": estimand}
     return StratifiedEstimate(

@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import math
 
-__all__ = ["format_p", "format_p_relation", "format_number", "format_value"]
+__all__ = ["format_p", "format_p_relation", "format_number", "format_value", "describe_terms"]
 
 #: Below this a p-value is written "< 0.0001": Monte Carlo and normal p-values carry no more.
 P_FLOOR = 1e-4
@@ -56,3 +56,24 @@ def format_value(x, digits: int = 2) -> str:
     if isinstance(x, (int, float)) and abs(x) != 0 and (abs(x) < 10 ** -digits or abs(x) >= 1e6):
         return f"{x:.{max(digits, 2)}g}"
     return f"{x:,.{digits}f}"
+
+
+def describe_terms(data: dict, *, knots: bool = False) -> str:
+    """How the covariates entered the models, in plain words, from a result dict.
+
+    "spline(age, 4 knots), linear(visits); others as indicators" (``knots=True`` adds the
+    knot values); "formula: <right-hand side>" when a formula set the terms.
+    """
+    spec = data.get("spec") or {}
+    if spec.get("formula"):
+        return f"formula: {spec['formula']}"
+    forms = (data.get("covariates") or {}).get("terms") or []
+    parts = []
+    for f in forms:
+        text = f["label"]
+        if knots and f.get("knots"):
+            text += " at " + ", ".join(format_value(k) for k in f["knots"])
+        parts.append(text)
+    if not parts:
+        return "every covariate binary or categorical: indicators"
+    return "; ".join(parts) + "; binary and categorical covariates as indicators"

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import textwrap
 
-from .formatting import format_number as _n, format_p as _p
+from .formatting import describe_terms, format_number as _n, format_p as _p
 from .verdict import NOT_SIGNIFICANT, measure_code
 
 __all__ = ["render_summary"]
@@ -24,6 +24,8 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
         f"(exposed {flow['analysed_by_group']['exposed']}, reference "
         f"{flow['analysed_by_group']['reference']})",
         f"  estimand: {q['population']}",
+        *textwrap.wrap(f"terms: {describe_terms(data)}", width, initial_indent="  ",
+                       subsequent_indent="    "),
         f"  strata: {len(data['strata'])}; max |SMD| before {_n(data['balance']['max_abs_smd_before'], 3)}"
         f", after {_n(data['balance']['max_abs_smd_after'], 3)}",
         f"  crude {crude['measure']}: {_n(crude['estimate'])} "

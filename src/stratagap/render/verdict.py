@@ -2,8 +2,9 @@
 
 The wording is deliberately conservative: "the gap survives adjustment" is said only when the
 headline CI excludes the null, the default permutation test rejects at alpha, and balance after
-adjustment is acceptable (every |SMD| <= 0.1, common practice). Whatever is said, the cautions
-follow.
+adjustment is acceptable (every |SMD| <= 0.1, common practice, and no flag on the squares and
+products of the covariates, see :mod:`stratagap.stratify.higher_order`). Whatever is said, the
+cautions follow.
 
 Every effect number in the paragraph is on the headline's scale. With a ratio measure (risk or
 odds ratio, null 1) the crude comparison is quoted only when it is on the same scale, and any
@@ -56,7 +57,9 @@ def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_c
     p = _get(main, "p_value")
     rejects = p is not None and p < spec.alpha
     max_smd = _get(balance, "max_abs_smd_after")
-    balanced = max_smd is not None and max_smd <= 0.1
+    higher = _get(balance, "higher_order")
+    higher_flag = bool(_get(higher, "flagged", False))
+    balanced = max_smd is not None and max_smd <= 0.1 and not higher_flag
     level = int(round(100 * (1 - spec.alpha)))
     population = _get(overlap, "estimand_label", spec.estimand.upper())
 
@@ -72,8 +75,16 @@ def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_c
                  f"gives p {_fmt_p(p)} ({_get(main, 'alternative', spec.alternative)}).")
     if max_smd is not None:
         parts.append(f"After stratification the largest absolute standardized mean difference is "
-                     f"{_fmt(max_smd, 3)} ({'within' if balanced else 'above'} the 0.1 threshold, "
+                     f"{_fmt(max_smd, 3)} ({'within' if max_smd <= 0.1 else 'above'} the 0.1 threshold, "
                      f"common practice).")
+    if higher_flag:
+        worst = (_get(higher, "worst") or [{}])[0]
+        parts.append(f"Squares or products of the covariates stay imbalanced after "
+                     f"stratification (largest |SMD| {_fmt(_get(higher, 'max_abs_smd_after'), 3)}, "
+                     f"{worst.get('term', '')}; shuffles of the exposure within strata reach "
+                     f"{_fmt(_get(higher, 'permutation_p95'), 3)} at their 95th percentile): the strata "
+                     f"alone do not balance them, and the result leans on the regression within "
+                     f"strata, whose spline terms cover squares but not products of covariates.")
     parts.append(_gamma_sentence(sensitivity))
     e_point = _get(sensitivity.e_value, "point")
     if e_point is not None:

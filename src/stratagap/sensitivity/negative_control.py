@@ -40,7 +40,7 @@ class NegativeControl:
 
 def negative_control_check(values, t, X, labels, *, column: str, names, estimand: str,
                            alpha: float, engine: str, resamples: int, seed, batch_size,
-                           interaction_min_extra) -> NegativeControl:
+                           interaction_min_extra, n_linear=None) -> NegativeControl:
     """Test and estimate the exposure's "effect" on a negative-control outcome.
 
     Parameters
@@ -55,6 +55,9 @@ def negative_control_check(values, t, X, labels, *, column: str, names, estimand
         Design column names.
     estimand, alpha, engine, resamples, seed, batch_size, interaction_min_extra
         As in :class:`stratagap.spec.AnalysisSpec`.
+    n_linear : int, optional
+        Leading linear columns of ``X`` (the rest are spline columns), as in
+        :func:`stratagap.estimation.effects.stratified_regression`.
 
     Returns
     -------
@@ -74,6 +77,6 @@ def negative_control_check(values, t, X, labels, *, column: str, names, estimand
                                 measure="difference", alpha=alpha,
                                 interaction_min_extra=interaction_min_extra,
                                 population=f"analysed units with {column!r} recorded",
-                                names=names)
+                                names=names, n_linear=n_linear)
     return NegativeControl(column=column, n=int(ok.sum()), estimate=est, test=test,
                            alarm=bool(test.p_value < alpha))

@@ -50,6 +50,8 @@ class BalanceResult:
         Names of flagged terms.
     adjusted : bool
         Whether after-adjustment weights were given.
+    higher_order : HigherOrderBalance or None
+        Squares and pairwise products (:mod:`stratagap.stratify.higher_order`), when checked.
     """
 
     rows: list
@@ -59,6 +61,7 @@ class BalanceResult:
     threshold: float = smd_threshold
     flagged: list = field(default_factory=list)
     adjusted: bool = False
+    higher_order: object = None
 
     def to_dict(self) -> dict:
         """JSON-ready builtins (non-finite numbers become None)."""
@@ -70,6 +73,7 @@ class BalanceResult:
             "threshold": float(self.threshold),
             "flagged": list(self.flagged),
             "adjusted": bool(self.adjusted),
+            "higher_order": None if self.higher_order is None else self.higher_order.to_dict(),
         }
 
     def to_frame(self):

@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 import math
 
-from ..formatting import format_value as _f
+from ..formatting import describe_terms, format_value as _f
 from ..tables import strata_with_estimates
 from .baseline import BASELINE_COLUMNS, analysed_raw, baseline_table, header as baseline_header
 from .flow import flow_steps
@@ -123,4 +123,5 @@ def build_context(view, figures: dict, *, compact: bool) -> dict:
         "spec_toml": spec_toml(data), "command": run.get("command") or source.get("command"),
         "seed": data["spec"]["seed"], "run": run,
         "versions": (run.get("versions") or {}), "fmt": _f,
+        "terms_text": describe_terms(data, knots=True),
     }
