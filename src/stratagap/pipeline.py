@@ -26,6 +26,7 @@ from .stratify import scores as _scores
 from . import sensitivity as _sensitivity
 from .stratify import strata as _strata
 from ._base.layout import StratumLayout
+from . import _cluster_wiring as _clusters
 from .errors import InputError, MissingDataWarning, StrataWarning, StratagapWarning
 from .result import (AnalysisResult, CAUTIONS, TEST_LABELS, ParticipantFlow, PermutationTests,
                      PreparedSummary, versions)
@@ -92,13 +93,15 @@ def analyze(table, *, exposure: str, outcome: str, covariates=None, progress=Non
 
 
 def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
+    _clusters.check(table, spec)
     prepared = _data.prepare(
         table, exposure=spec.exposure, outcome=spec.outcome,
         covariates=list(spec.covariates) if spec.covariates else None,
         exposed_value=spec.exposed_value, outcome_type=spec.outcome_type,
         outcome_event=spec.outcome_event, formula=spec.formula, missing=spec.missing,
         strata_column=spec.strata_column, negative_control=spec.negative_control,
-        censoring_weights=spec.censoring_weights)
+        censoring_weights=spec.censoring_weights, cluster=spec.cluster)
+    clusters = _clusters.structure(table, spec, prepared)  # None without `cluster`
     clock.lap("data")
     binary = prepared.outcome_type == "binary"
     if spec.measure != "difference" and not binary:
@@ -107,21 +110,27 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
     crude = _effects.crude(prepared.y, prepared.t, prepared.outcome_type, alpha=spec.alpha)
     clock.lap("effects")
 
-    propensity = _scores.fit_propensity(prepared.X, prepared.t, prepared.design_names,
-                                        method=spec.score_model, folds=spec.folds, seed=spec.seed)
-    clock.lap("scores")
-    overlap = _overlap.apply_overlap(propensity.score, prepared.t, estimand=spec.estimand,
-                                     rule=spec.trim)
-    clock.lap("overlap")
-    keep = np.asarray(overlap.keep, dtype=bool)
-    user = None if prepared.user_strata is None else prepared.user_strata[keep]
-    strata = _strata.make_strata(propensity.score[keep], prepared.t[keep], estimand=spec.estimand,
-                                 n_strata=spec.n_strata, method=spec.strata_method,
-                                 min_per_group=spec.min_per_group, user_labels=user,
-                                 logit=propensity.logit[keep],
-                                 # Imbens & Rubin 2015, ch. 13: a new block needs >= K + 2 units
-                                 min_block=len(prepared.design_names) + 2)
-    clock.lap("strata")
+    cluster_design = None
+    if clusters is not None and clusters.level == "cluster":  # score, overlap, strata of clusters
+        propensity, overlap, strata, cluster_design = _clusters.design(prepared, spec, clusters)
+        keep = np.asarray(overlap.keep, dtype=bool)
+        clock.lap("strata")
+    else:
+        propensity = _scores.fit_propensity(prepared.X, prepared.t, prepared.design_names,
+                                            method=spec.score_model, folds=spec.folds, seed=spec.seed)
+        clock.lap("scores")
+        overlap = _overlap.apply_overlap(propensity.score, prepared.t, estimand=spec.estimand,
+                                         rule=spec.trim)
+        clock.lap("overlap")
+        keep = np.asarray(overlap.keep, dtype=bool)
+        user = None if prepared.user_strata is None else prepared.user_strata[keep]
+        strata = _strata.make_strata(propensity.score[keep], prepared.t[keep], estimand=spec.estimand,
+                                     n_strata=spec.n_strata, method=spec.strata_method,
+                                     min_per_group=spec.min_per_group, user_labels=user,
+                                     logit=propensity.logit[keep],
+                                     # Imbens & Rubin 2015, ch. 13: a new block needs >= K + 2 units
+                                     min_block=len(prepared.design_names) + 2)
+        clock.lap("strata")
     # Rows analysed: kept by the overlap rule and in a stratum holding both groups.
     in_stratum = np.asarray(strata.labels) >= 0
     used = np.flatnonzero(keep)[in_stratum]
@@ -190,6 +199,14 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
         engine=spec.engine, resamples=spec.resamples, seed=spec.seed,
         batch_size=spec.batch_size, interaction_min_extra=spec.interaction_min_extra)
     clock.lap("negative_control")
+    cluster_parts = {}
+    if clusters is not None:  # cluster-level test and bounds, cluster-robust intervals
+        cluster_parts = _clusters.finish(
+            clusters, spec, design_details=cluster_design, used=used, y=y, t=t, X=X,
+            labels=labels, names=prepared.design_names, tests=tests, adjusted=adjusted,
+            plain=plain, risk_ratio=risk_ratio, constant=constant, sensitivity=sensitivity,
+            score=propensity.score[used], terms=terms, binary=binary, progress=progress)
+        clock.lap("clusters")
     flow = ParticipantFlow.from_stages(prepared.flow, trimmed_by_group=overlap.set_aside,
                                        strata_set_aside_by_group=getattr(strata, "set_aside", {}),
                                        t_analysed=t)
@@ -209,6 +226,9 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
                 # covariate columns of the analysed rows, for the baseline table
                 "raw": prepared.raw.iloc[used].reset_index(drop=True)},
     )
+    parts.update({k: v for k, v in cluster_parts.items() if k != "tests"})
+    if "tests" in cluster_parts:
+        parts["tests"] = cluster_parts["tests"]
     parts["verdict"] = write_verdict(spec=spec, **{k: parts[k] for k in (
         "crude", "adjusted", "tests", "balance", "sensitivity", "cross_checks",
         "negative_control", "overlap")})

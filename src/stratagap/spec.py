@@ -39,6 +39,7 @@ SCORE_MODELS = ("logistic", "boosting")
 STRATA_METHODS = ("quantile", "adaptive")
 MISSING_POLICIES = ("drop", "error", "indicator")
 OUTCOME_TYPES = ("auto", "binary", "continuous")
+CLUSTER_LEVELS = ("auto", "cluster", "unit")
 MAX_RESAMPLES = 10_000_000
 
 
@@ -75,6 +76,9 @@ class AnalysisSpec:
     truncate_weights: tuple[float, float] | None = None
     interaction_min_extra: int = 2
     batch_size: int | None = None
+    #: the assigned unit (hospital, clinic, region): see stratagap.data._clusters
+    cluster: str | None = None
+    cluster_level: str = "auto"
     data_path: str | None = field(default=None, compare=False)
 
     def __post_init__(self):
@@ -88,6 +92,8 @@ class AnalysisSpec:
         for key in ("covariates", "gamma_grid", "truncate_weights"):
             if out[key] is not None:
                 out[key] = list(out[key])
+        if out["cluster"] is None:  # results without --cluster keep their keys
+            del out["cluster"], out["cluster_level"]
         return out
 
 
@@ -137,6 +143,12 @@ def _check(spec: AnalysisSpec) -> None:
     _choice(spec.strata_method, STRATA_METHODS, "--strata-method")
     _choice(spec.missing, MISSING_POLICIES, "--missing")
     _choice(spec.outcome_type, OUTCOME_TYPES, "--outcome-type")
+    _choice(spec.cluster_level, CLUSTER_LEVELS, "--cluster-level")
+    if spec.cluster is not None and (not isinstance(spec.cluster, str) or not spec.cluster):
+        raise InputError(f"`--cluster` names the column of the assigned unit; got {spec.cluster!r}")
+    if spec.cluster is not None and spec.statistic in ("studentized", "sum"):
+        raise InputError(f"`--statistic {spec.statistic}` is not available with --cluster; "
+                         "use adjusted (default) or difference")
     set_(spec, "n_strata", _int_in(spec.n_strata, 1, 1000, "--strata"))
     set_(spec, "min_per_group", _int_in(spec.min_per_group, 1, 10_000, "--min-per-group"))
     set_(spec, "folds", _int_in(spec.folds, 2, 50, "--folds"))

@@ -124,7 +124,7 @@ class PreparedData:
 
 def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome_type="auto",
             formula=None, missing="drop", strata_column=None, negative_control=None,
-            outcome_event=None, censoring_weights=False) -> PreparedData:
+            outcome_event=None, censoring_weights=False, cluster=None) -> PreparedData:
     """Check and code the analysed columns of ``table``.
 
     Parameters
@@ -155,6 +155,9 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
         For a binary outcome whose two values are not 0/1 or True/False: the event value.
     censoring_weights : bool
         Also compute inverse-probability-of-censoring weights for the analysed rows.
+    cluster : str, optional
+        The cluster column (checked by the caller): it joins the canonical sort key, so rows
+        tied on every analysed column keep their clusters whatever the input order.
 
     Returns
     -------
@@ -232,10 +235,11 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     # Candidate rows: everything known except possibly the outcome (they feed the censoring model).
     cand_mask = ~np.logical_or.reduce([miss[c] for c in drop_cols if c != outcome])
     cols = list(dict.fromkeys([exposure, outcome, *covariates, *(c for c in (strata_column, negative_control) if c)]))
-    cand = table.loc[cand_mask, cols].copy()
+    extra = [cluster] if cluster is not None and cluster not in cols else []
+    cand = table.loc[cand_mask, cols + extra].copy()
     cand["__row__"] = np.flatnonzero(cand_mask)
     cand["__t__"] = group[cand_mask]
-    order = _coding.canonical_order(cand, ["__t__", *cols])
+    order = _coding.canonical_order(cand, ["__t__", *cols, *extra])
     cand = cand.iloc[order].reset_index(drop=True)
     filled, formula_used = _design.fill_missing(cand, covariates, formula, missing)
     keep = cand[outcome].notna().to_numpy()
