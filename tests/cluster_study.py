@@ -86,12 +86,13 @@ def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--datasets", type=int, default=1000)
     parser.add_argument("--scenarios", default=",".join(SCENARIOS))
+    parser.add_argument("--start", type=int, default=0, help="first dataset index")
     args = parser.parse_args(argv)
     print("scenario | --cluster | rejection % (MC SE) | coverage % (MC SE) | m | CPU s")
     for name in args.scenarios.split(","):
         for cluster in (True, False):
             t0 = time.process_time()
-            rej, cov, m = run(name, args.datasets, cluster=cluster)
+            rej, cov, m = run(name, args.datasets, cluster=cluster, start=args.start)
             print(f"{name} | {'yes' if cluster else 'no'} | {100 * rej:.1f} ({100 * se(rej, m):.1f})"
                   f" | {100 * cov:.1f} ({100 * se(cov, m):.1f}) | {m} | "
                   f"{time.process_time() - t0:.0f}", flush=True)
