@@ -133,3 +133,27 @@ def test_cli_cluster_end_to_end(tmp_path, data, capsys):
                  "--cluster", "nope"])
     assert code == 2
     assert "`--cluster` column 'nope'" in capsys.readouterr().err
+
+
+def test_every_cluster_field_is_documented(clustered):
+    import re
+    from pathlib import Path
+
+    doc = Path(__file__).resolve().parents[1] / "docs" / "results.md"
+    documented = set(re.findall(r"`([^`]+)`", doc.read_text(encoding="utf-8")))
+
+    def names(value, path=""):
+        if isinstance(value, dict):
+            for key, item in value.items():
+                yield key
+                if not key.endswith("coefficients"):  # keys are design column names
+                    yield from names(item, f"{path}.{key}")
+        elif isinstance(value, list):
+            for item in value[:3]:
+                yield from names(item, path)
+
+    d = clustered.to_dict()
+    found = set(names({"clusters": d["clusters"], "strata": d["strata"], "spec": d["spec"]}))
+    balance_keys = set(names(d["balance"]))
+    missing = sorted(n for n in found - balance_keys if n not in documented)
+    assert not missing, f"document these fields in docs/results.md: {missing}"
