@@ -23,13 +23,13 @@ import numpy as np
 
 from ._base.jsonable import fields_dict, jsonable
 from ._base.layout import StratumLayout
-from .data import _clusters
+from .data import check_cluster_column, cluster_structure, cluster_table, undeclared_clusters
 from .errors import ClusterWarning, InputError
-from .estimation import clustered as _clustered
-from .inference.clusters import cluster_test
+from .estimation import clustered_estimate, ipw_cluster_sandwich
+from .inference import cluster_test
 from .result import TEST_LABELS, PermutationTests
 from . import sensitivity as _sensitivity
-from .sensitivity._gamma_clusters import cluster_gamma_bounds
+from .sensitivity import cluster_gamma_bounds
 from .stratify import balance as _balance
 from .stratify import overlap as _overlap
 from .stratify import scores as _scores
@@ -79,7 +79,7 @@ def check(table, spec) -> None:
     if spec.cluster is None:
         return
     used = {spec.exposure, spec.outcome, *(spec.covariates or ())}
-    _clusters.check_cluster_column(table, spec.cluster, used=used)
+    check_cluster_column(table, spec.cluster, used=used)
 
 
 def structure(table, spec, prepared):
@@ -87,7 +87,7 @@ def structure(table, spec, prepared):
     if spec.cluster is None:
         used = {spec.exposure, spec.outcome, spec.strata_column, spec.negative_control,
                 *prepared.covariates, *prepared.raw.columns}
-        for hit in _clusters.undeclared_clusters(table, prepared.row_ids, prepared.t, used=used):
+        for hit in undeclared_clusters(table, prepared.row_ids, prepared.t, used=used):
             warnings.warn(
                 f"Column {hit['column']!r} ({hit['values']} values) looks like the unit that was "
                 f"assigned: exposure is constant within the values holding "
@@ -96,7 +96,7 @@ def structure(table, spec, prepared):
                 f"rerun with --cluster {hit['column']}.", ClusterWarning)
         return None
     values = table[spec.cluster].to_numpy()[prepared.row_ids]
-    cs = _clusters.cluster_structure(values, prepared.t, column=spec.cluster,
+    cs = cluster_structure(values, prepared.t, column=spec.cluster,
                                      level=spec.cluster_level)
     if cs.singletons:
         warnings.warn(f"{cs.singletons} of {cs.n_clusters} clusters of {spec.cluster!r} hold a "
@@ -120,7 +120,7 @@ def design(prepared, spec, cs):
     objects for the ``clusters`` block.
     """
     codes = cs.codes
-    Xc, kinds = _clusters.cluster_table(prepared.X, prepared.design_names, codes)
+    Xc, kinds = cluster_table(prepared.X, prepared.design_names, codes)
     tc = (cs.exposed_share > 0.5).astype(np.int8)
     user = None
     if prepared.user_strata is not None:
@@ -225,17 +225,17 @@ def finish(cs, spec, *, design_details, used, y, t, X, labels, names, tests, adj
         test_level = "units"
     weights = np.array([row["weight"] for row in adjusted.per_stratum])
     common = dict(weights=weights, names=names, estimand=spec.estimand, alpha=spec.alpha)
-    new_adjusted, row = _clustered.clustered_estimate(adjusted, y, t, X, labels, codes,
+    new_adjusted, row = clustered_estimate(adjusted, y, t, X, labels, codes,
                                                       name="headline", **common)
     intervals = [row]
-    new_plain, row = _clustered.clustered_estimate(plain, y, t, X, labels, codes,
+    new_plain, row = clustered_estimate(plain, y, t, X, labels, codes,
                                                    name="plain stratified difference", **common)
     intervals.append(row)
     out.update(adjusted=new_adjusted, plain=new_plain, risk_ratio=risk_ratio)
     if risk_ratio is adjusted:
         out["risk_ratio"] = new_adjusted
     elif risk_ratio is not None:
-        out["risk_ratio"], row = _clustered.clustered_estimate(
+        out["risk_ratio"], row = clustered_estimate(
             risk_ratio, y, t, X, labels, codes, name="standardized risk ratio", **common)
         intervals.append(row)
     # the E-value and the tipping grid read the cluster-robust intervals
@@ -246,7 +246,7 @@ def finish(cs, spec, *, design_details, used, y, t, X, labels, names, tests, adj
         tipping=_sensitivity.tipping_grid(
             new_adjusted.estimate, new_adjusted.ci_low, new_adjusted.ci_high,
             measure="difference", benchmarks=_sensitivity.covariate_benchmarks(terms, X, y, t)))
-    intervals.append(_clustered.ipw_cluster_sandwich(y, t, score, codes, estimand=spec.estimand,
+    intervals.append(ipw_cluster_sandwich(y, t, score, codes, estimand=spec.estimand,
                                                      alpha=spec.alpha))
     few = min(by_group.values()) < FEW_CLUSTERS
     caution = None
