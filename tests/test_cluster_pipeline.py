@@ -59,6 +59,13 @@ def test_cluster_level_block_and_test(clustered, data):
     assert any("Few clusters" in w["message"] for w in d["warnings"])
     assert {r["stratum"] for r in block["design"]["strata"]} == {r["stratum"] for r in d["strata"]}
     assert sum(r["n"] for r in d["strata"]) == d["n_used"]  # strata tables count rows
+    # the Gamma bounds are of the cluster-level test: at Gamma = 1 its normal one-sided p
+    bounds = d["sensitivity"]["gamma_bounds"]
+    side = "normal_p_greater" if bounds["direction"] == "greater" else "normal_p_less"
+    assert bounds["curve"][0]["gamma"] == 1.0
+    assert bounds["curve"][0]["p_upper"] == pytest.approx(d["test"][side], rel=1e-9)
+    assert bounds["n_strata"] == len(d["strata"])
+    assert block["test_weights"].startswith("rows (patients) weighted equally")
 
 
 def test_json_is_deterministic_and_row_order_free(clustered, data):
