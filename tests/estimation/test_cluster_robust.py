@@ -153,3 +153,22 @@ def test_clustered_headline_counts_clusters_and_gives_a_small_sample_df():
                                             estimand="ate", alpha=0.05)
     assert row.n_clusters == 30 and 2 < row.df < 600
     assert "CR2" in out.variance_method and "CR2" in out.method
+
+
+def test_ipw_cluster_row_is_the_hajek_estimate_with_the_weighted_cr1():
+    rng = np.random.default_rng(11)
+    g = np.repeat(np.arange(25), 6)
+    x = rng.standard_normal(g.size)
+    e = 1 / (1 + np.exp(-0.7 * x))
+    t = (rng.random(g.size) < e).astype(float)
+    y = x + rng.standard_normal(25)[g] + rng.standard_normal(g.size)
+    row = clustered.ipw_cluster_sandwich(y, t, e, g, estimand="ate", alpha=0.05)
+    w = t / e + (1 - t) / (1 - e)
+    hajek = np.average(y[t == 1], weights=w[t == 1]) - np.average(y[t == 0], weights=w[t == 0])
+    assert row.estimate == pytest.approx(hajek, rel=1e-12)  # Hernan & Robins 2020, ch. 12
+    # WLS is OLS on sqrt(w)-scaled rows: our CR1 of that fit is statsmodels' cluster SE
+    s = np.sqrt(w)
+    D = np.column_stack([np.ones(g.size), t]) * s[:, None]
+    ours = cluster_sandwich(D, y * s, g, np.array([[0.0], [1.0]]), kind="CR1")
+    assert row.se == pytest.approx(np.sqrt(ours.cov[0, 0]), rel=1e-10)
+    assert row.df == 24
