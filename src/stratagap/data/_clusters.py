@@ -156,14 +156,14 @@ def undeclared_clusters(table: pd.DataFrame, row_ids, t, *, used) -> list[dict]:
     Returns one dict per flagged column: ``column, values, share`` (share of analysed rows in
     exposure-constant values).
     """
-    rows = table.iloc[np.asarray(row_ids)]
+    row_ids = np.asarray(row_ids)
     t = np.asarray(t, dtype=float)
-    n = len(rows)
+    n = row_ids.size
     found = []
-    for col in rows.columns:
+    for col in table.columns:  # one column at a time: no copy of the whole table
         if col in used:
             continue
-        s = rows[col]
+        s = table[col].iloc[row_ids]
         known = s.notna().to_numpy()
         if known.sum() < n * PURE_SHARE:
             continue
