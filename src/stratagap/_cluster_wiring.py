@@ -188,7 +188,7 @@ def design(prepared, spec, cs):
 
 
 def finish(cs, spec, *, design_details, used, y, t, X, labels, names, tests, adjusted, plain,
-           risk_ratio, constant, sensitivity, score, terms, binary, progress):
+           risk_ratio, sensitivity, score, terms, binary, progress):
     """Cluster-level test and bounds, cluster-robust intervals, and the ``clusters`` block.
 
     Returns a dict of the pipeline's parts to replace (``tests``, ``adjusted``, ``plain``,

@@ -204,7 +204,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
         cluster_parts = _clusters.finish(
             clusters, spec, design_details=cluster_design, used=used, y=y, t=t, X=X,
             labels=labels, names=prepared.design_names, tests=tests, adjusted=adjusted,
-            plain=plain, risk_ratio=risk_ratio, constant=constant, sensitivity=sensitivity,
+            plain=plain, risk_ratio=risk_ratio, sensitivity=sensitivity,
             score=propensity.score[used], terms=terms, binary=binary, progress=progress)
         clock.lap("clusters")
     flow = ParticipantFlow.from_stages(prepared.flow, trimmed_by_group=overlap.set_aside,
@@ -226,9 +226,7 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
                 # covariate columns of the analysed rows, for the baseline table
                 "raw": prepared.raw.iloc[used].reset_index(drop=True)},
     )
-    parts.update({k: v for k, v in cluster_parts.items() if k != "tests"})
-    if "tests" in cluster_parts:
-        parts["tests"] = cluster_parts["tests"]
+    parts.update(cluster_parts)  # the cluster-level test and bounds, the CR2 intervals
     parts["verdict"] = write_verdict(spec=spec, **{k: parts[k] for k in (
         "crude", "adjusted", "tests", "balance", "sensitivity", "cross_checks",
         "negative_control", "overlap")})
