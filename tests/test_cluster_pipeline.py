@@ -164,3 +164,13 @@ def test_every_cluster_field_is_documented(clustered):
     balance_keys = set(names(d["balance"]))
     missing = sorted(n for n in found - balance_keys if n not in documented)
     assert not missing, f"document these fields in docs/results.md: {missing}"
+
+
+def test_strata_of_few_clusters_are_capped_with_a_warning():
+    few = hospitals(np.random.default_rng(5), 16, 5, 12, 0.5, "cluster")
+    d = _run(few, cluster="hospital").to_dict()
+    per = few.groupby("hospital")["t"].first()
+    k1, k0 = int(per.sum()), int((1 - per).sum())
+    cap = max(1, min(16 // 6, min(k1, k0) // 2))
+    assert cap < 5 and len(d["strata"]) <= cap
+    assert any(f"at most {cap} strata" in w["message"] for w in d["warnings"])

@@ -24,7 +24,7 @@ import numpy as np
 from ._base.jsonable import fields_dict, jsonable
 from ._base.layout import StratumLayout
 from .data import check_cluster_column, cluster_structure, cluster_table, undeclared_clusters
-from .errors import ClusterWarning, InputError
+from .errors import ClusterWarning, InputError, StrataWarning
 from .estimation import clustered_estimate, ipw_cluster_sandwich
 from .inference import cluster_test
 from .result import TEST_LABELS, PermutationTests
@@ -134,8 +134,9 @@ def design(prepared, spec, cs):
                                  folds=spec.folds, seed=spec.seed)
     ov = _overlap.apply_overlap(fit.score, tc, estimand=spec.estimand, rule=spec.trim)
     keep_c = np.asarray(ov.keep, dtype=bool)
+    n_strata = _strata_of_clusters(spec, tc[keep_c])
     st = _strata.make_strata(fit.score[keep_c], tc[keep_c], estimand=spec.estimand,
-                             n_strata=spec.n_strata, method=spec.strata_method,
+                             n_strata=n_strata, method=spec.strata_method,
                              min_per_group=spec.min_per_group,
                              user_labels=None if user is None else user[keep_c],
                              logit=fit.logit[keep_c],
@@ -185,6 +186,22 @@ def design(prepared, spec, cs):
                  "at both levels (rows: the balance table; clusters: here)"),
     }
     return propensity, overlap, strata, details
+
+
+def _strata_of_clusters(spec, tc):
+    """The requested number of strata, capped at what the clusters support (with a warning).
+
+    The cap is the strata stage's own rule (``make_strata``: ``n // (2 min_per_group)`` and
+    half the smaller group), counted in clusters.
+    """
+    K, K1 = tc.size, int(tc.sum())
+    supported = max(1, min(K // (2 * spec.min_per_group), min(K1, K - K1) // 2))
+    if spec.n_strata > supported and spec.strata_column is None and spec.strata_method == "quantile":
+        warnings.warn(f"Strata of clusters: {K1} exposed and {K - K1} reference clusters support "
+                      f"at most {supported} strata; {supported} used instead of {spec.n_strata}.",
+                      StrataWarning)
+        return supported
+    return spec.n_strata
 
 
 def finish(cs, spec, *, design_details, used, y, t, X, labels, names, tests, adjusted, plain,
