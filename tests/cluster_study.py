@@ -65,16 +65,25 @@ def one(k, i, scenario, cluster):
     data = hospitals(rng, *SCENARIOS[scenario])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        r = stratagap.analyze(data, exposure="t", outcome="y", covariates=["x", "h"],
-                              resamples=RESAMPLES, seed=i,
-                              **({"cluster": "hospital"} if cluster else {}))
+        try:
+            r = stratagap.analyze(data, exposure="t", outcome="y", covariates=["x", "h"],
+                                  resamples=RESAMPLES, seed=i,
+                                  **({"cluster": "hospital"} if cluster else {}))
+        except stratagap.InputError as exc:  # counted, and reported by `run`
+            print(f"  dataset {i} of {scenario}: {exc}", file=sys.stderr)
+            return None
     return r.test.p_value < ALPHA, r.adjusted.ci_low <= 0.0 <= r.adjusted.ci_high
 
 
 def run(scenario, datasets, *, cluster, start=0):
-    """(rejection rate, coverage, m) over datasets ``start .. start + datasets - 1``."""
+    """(rejection rate, coverage, m) over datasets ``start .. start + datasets - 1``.
+
+    ``m`` counts the datasets analysed; one the analysis refuses (an ``InputError``, e.g. a
+    group of a single cluster) is named on stderr and left out.
+    """
     k = list(SCENARIOS).index(scenario)
-    out = np.array([one(k, i, scenario, cluster) for i in range(start, start + datasets)])
+    runs = [one(k, i, scenario, cluster) for i in range(start, start + datasets)]
+    out = np.array([r for r in runs if r is not None])  # refused datasets are left out (stderr)
     return float(out[:, 0].mean()), float(out[:, 1].mean()), len(out)
 
 
