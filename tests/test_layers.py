@@ -28,7 +28,7 @@ LAYERS = [
     ("sensitivity",),
     ("spec", "result"),
     ("render",),
-    ("pipeline",),
+    ("pipeline", "_cluster_wiring"),
     ("cli", "demo", "__main__", ""),
 ]
 

@@ -80,6 +80,8 @@ _OPTIONS = [
     ("--negative-control", "negative_control", str, "an outcome the exposure cannot affect"),
     ("--truncate-weights", "truncate_weights", str, "truncate IP weights at percentiles LO,HI"),
     ("--batch-size", "batch_size", str, "resamples per batch (memory); results do not depend on it"),
+    ("--cluster", "cluster", str, "column of the unit that was assigned (hospital, clinic, region)"),
+    ("--cluster-level", "cluster_level", str, "auto (default), cluster (exposure per cluster) or unit"),
 ]
 
 

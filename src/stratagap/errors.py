@@ -20,6 +20,7 @@ __all__ = [
     "WeightWarning",
     "EngineWarning",
     "ModelWarning",
+    "ClusterWarning",
 ]
 
 
@@ -69,3 +70,7 @@ class EngineWarning(StratagapWarning):
 
 class ModelWarning(StratagapWarning):
     """An outcome model was simplified (interactions dropped, leverage 1, rank deficiency)."""
+
+
+class ClusterWarning(StratagapWarning):
+    """Clustering: few clusters, one-unit clusters, or a column that looks like an undeclared cluster."""

@@ -170,6 +170,7 @@ class AnalysisResult:
     run: dict = field(compare=False)
     arrays: dict = field(compare=False, repr=False)
     matching: Any = None  # design=match: stratagap.stratify.matching.Matching
+    clusters: Any = None  # the `clusters` block, only with `cluster` (stratagap._cluster_wiring)
 
     # -- convenience -----------------------------------------------------------------
     @property
@@ -247,6 +248,7 @@ class AnalysisResult:
             "strata_info": {k: v for k, v in strata.items() if k != "table"},
             "balance": jsonable(self.balance),
             "test": self.tests,
+            **({} if self.clusters is None else {"clusters": self.clusters}),
             "crude": jsonable(self.crude),
             "adjusted": adjusted,
             "heterogeneity": self.heterogeneity,

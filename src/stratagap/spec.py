@@ -42,6 +42,7 @@ MISSING_POLICIES = ("drop", "error", "indicator")
 OUTCOME_TYPES = ("auto", "binary", "continuous")
 #: How continuous covariates enter every model: a natural cubic spline each, or one linear term.
 TERMS = ("spline", "linear")
+CLUSTER_LEVELS = ("auto", "cluster", "unit")
 MAX_RESAMPLES = 10_000_000
 DESIGNS = ("strata", "match")
 MATCHING_FIELDS = ("design", "per_exposed", "caliper_sd", "same_value_on")
@@ -86,6 +87,9 @@ class AnalysisSpec:
     truncate_weights: tuple[float, float] | None = None
     interaction_min_extra: int = 2
     batch_size: int | None = None
+    #: the assigned unit (hospital, clinic, region): see stratagap.data._clusters
+    cluster: str | None = None
+    cluster_level: str = "auto"
     data_path: str | None = field(default=None, compare=False)
 
     def __post_init__(self):
@@ -102,6 +106,8 @@ class AnalysisSpec:
         if self.design == "strata":  # the matching settings shape only a matched design
             for key in MATCHING_FIELDS:
                 del out[key]
+        if out["cluster"] is None:  # results without --cluster keep their keys
+            del out["cluster"], out["cluster_level"]
         return out
 
 
@@ -153,6 +159,15 @@ def _check(spec: AnalysisSpec) -> None:
     _choice(spec.missing, MISSING_POLICIES, "missing")
     _choice(spec.outcome_type, OUTCOME_TYPES, "outcome_type")
     _choice(spec.terms, TERMS, "terms")
+    _choice(spec.cluster_level, CLUSTER_LEVELS, "cluster_level")
+    if spec.cluster is not None and (not isinstance(spec.cluster, str) or not spec.cluster):
+        raise InputError(f"`cluster` names the column of the assigned unit; got {spec.cluster!r}")
+    if spec.cluster is not None and spec.statistic in ("studentized", "sum"):
+        raise InputError(f"`statistic={spec.statistic}` is not available with `cluster`; "
+                         "use adjusted (default) or difference")
+    if spec.cluster is not None and spec.design == "match":
+        raise InputError("`cluster` and `design=match` exclude each other: matching pairs units, "
+                         "while exposure was assigned to clusters; use the default strata design")
     set_(spec, "n_strata", _int_in(spec.n_strata, 1, 1000, "n_strata"))
     set_(spec, "min_per_group", _int_in(spec.min_per_group, 1, 10_000, "min_per_group"))
     set_(spec, "folds", _int_in(spec.folds, 2, 50, "folds"))

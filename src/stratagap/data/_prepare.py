@@ -133,7 +133,7 @@ class PreparedData:
 def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome_type="auto",
             formula=None, missing="drop", strata_column=None, negative_control=None,
             outcome_event=None, censoring_weights=False, pool_rare_levels=False,
-            terms="spline") -> PreparedData:
+            terms="spline", cluster=None) -> PreparedData:
     """Check and code the analysed columns of ``table``.
 
     Parameters
@@ -171,6 +171,9 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
         How continuous covariates enter ``X``: a natural cubic spline each (knots by Harrell's
         quantile rule, see :mod:`stratagap.data._splines`; the spline columns follow the linear
         design, whose width is ``n_linear``), or one linear column each. ``formula`` overrides.
+    cluster : str, optional
+        The cluster column (checked by the caller): it joins the canonical sort key, so rows
+        tied on every analysed column keep their clusters whatever the input order.
 
     Returns
     -------
@@ -250,10 +253,11 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     # Candidate rows: everything known except possibly the outcome (they feed the censoring model).
     cand_mask = ~np.logical_or.reduce([miss[c] for c in drop_cols if c != outcome])
     cols = list(dict.fromkeys([exposure, outcome, *covariates, *(c for c in (strata_column, negative_control) if c)]))
-    cand = table.loc[cand_mask, cols].copy()
+    extra = [cluster] if cluster is not None and cluster not in cols else []
+    cand = table.loc[cand_mask, cols + extra].copy()
     cand["__row__"] = np.flatnonzero(cand_mask)
     cand["__t__"] = group[cand_mask]
-    order = _coding.canonical_order(cand, ["__t__", *cols])
+    order = _coding.canonical_order(cand, ["__t__", *cols, *extra])
     cand = cand.iloc[order].reset_index(drop=True)
     filled, formula_used = _design.fill_missing(cand, covariates, formula, missing)
     filled = _levels.check_levels(filled, covariates, pool=pool_rare_levels,

@@ -10,6 +10,7 @@ from .permutation import (PermutationResult, null_exposed_sums, null_statistics,
                           stratified_test)
 from .statistic import STATISTICS, TIE_RTOL, Statistic, exposed_sum_moments, tie_tolerance
 from ._checks import _check_resamples as check_resamples
+from .clusters import ClusterValues, cluster_test, cluster_values
 from ._engines import exact as _exact
 
 #: Most within-strata assignments the exact engine enumerates.
@@ -20,4 +21,5 @@ enumerate_exposed_sums = _exact.enumerate_exposed_sums
 __all__ = ["stratified_test", "PermutationResult", "residualize", "null_exposed_sums",
            "null_statistics", "shared_draws", "SharedDraws", "Statistic", "STATISTICS",
            "TIE_RTOL", "exposed_sum_moments", "tie_tolerance", "check_resamples",
-           "MAX_ASSIGNMENTS", "n_assignments", "enumerate_exposed_sums"]
+           "MAX_ASSIGNMENTS", "n_assignments", "enumerate_exposed_sums", "cluster_test",
+           "cluster_values", "ClusterValues"]

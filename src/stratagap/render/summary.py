@@ -39,6 +39,7 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
         lines.append(f"  matched sets: {m['matched_exposed']} of {m['n_exposed']} exposed units, "
                      f"1:{m['per_exposed']}, caliper {_n(m['caliper_sd'])} SD of the logit; "
                      f"left unmatched: {left or 'none'}")
+    lines.extend(_cluster_lines(data.get("clusters"), width))
     if truth is not None:
         key = q["estimand"].lower()
         lines.append(f"  TRUE effect (invented data, {q['estimand']} in the analysed population): "
@@ -72,3 +73,22 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
     for c in data["cautions"]:
         lines.extend(textwrap.wrap(c, width, initial_indent="! ", subsequent_indent="  "))
     return "\n".join(lines) + "\n"
+
+
+def _cluster_lines(block: dict | None, width: int) -> list[str]:
+    """The clustering lines (only with --cluster): clusters by group, sizes, the test's level."""
+    if not block:
+        return []
+    by, size = block["clusters_by_group"], block["patients_per_cluster"]
+    holding = "" if block["level"] == "cluster" else " holding"
+    lines = [f"  clusters ({block['column']}): {by['exposed']}{holding} exposed, "
+             f"{by['reference']}{holding} reference; {size['min']} to {size['max']} rows per "
+             f"cluster (median {_n(size['median'])})",
+             f"  exposure {'per cluster' if block['level'] == 'cluster' else 'varies within clusters'}"
+             f" ({block['mixed_clusters']} mixed clusters): permutation test at the level of "
+             f"{block['test_level']}; headline CI cluster-robust (CR2, df "
+             f"{_n(block['intervals'][0]['df'], 3)})"]
+    if block.get("caution"):
+        lines.extend(textwrap.wrap("! " + block["caution"], width, initial_indent="  ",
+                                   subsequent_indent="    "))
+    return lines

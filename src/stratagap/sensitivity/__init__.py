@@ -23,6 +23,7 @@ from ._evalue import RARE_OUTCOME_THRESHOLD, EValue, e_value, headline_e_value, 
 from ._gamma_bounds import DEFAULT_GAMMAS, GAMMA_CAP, GammaBounds, SensitivityValue, gamma_bounds, sensitivity_value
 from ._tipping import BENCHMARK_CAVEAT, TippingGrid, covariate_benchmarks, tipping_grid
 from .analysis import Sensitivity, sensitivity_analysis
+from ._gamma_clusters import cluster_gamma_bounds
 from .negative_control import NegativeControl, negative_control_check
 
 __all__ = [
@@ -30,5 +31,5 @@ __all__ = [
     "gamma_bounds", "sensitivity_value", "GammaBounds", "SensitivityValue", "DEFAULT_GAMMAS", "GAMMA_CAP",
     "tipping_grid", "covariate_benchmarks", "TippingGrid", "BENCHMARK_CAVEAT",
     "headline_e_value", "pooled_sd", "sensitivity_analysis", "Sensitivity",
-    "negative_control_check", "NegativeControl",
+    "negative_control_check", "NegativeControl", "cluster_gamma_bounds",
 ]

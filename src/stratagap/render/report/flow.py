@@ -20,8 +20,10 @@ def _groups(counts: dict | None) -> str:
     return ", ".join(f"{k} {int(v):,}" for k, v in counts.items())
 
 
-def flow_steps(flow: dict) -> list[dict]:
+def flow_steps(flow: dict, clusters: dict | None = None) -> list[dict]:
     """Main boxes, each with the exclusions that leave the flow after it.
+
+    With ``clusters`` (the result's ``clusters`` block) the boxes count clusters beside rows.
 
     Returns
     -------
@@ -69,4 +71,12 @@ def flow_steps(flow: dict) -> list[dict]:
                   "detail": _groups(flow["used_by_group"]), "exits": exits})
     steps.append({"title": "Analysed", "n": analysed,
                   "detail": _groups(flow["analysed_by_group"]), "exits": []})
+    if clusters:
+        cf = clusters["flow"]
+        steps[1]["detail"] += f"; {int(cf['clusters_complete_cases']):,} clusters"
+        trimmed_c = cf.get("clusters_trimmed")
+        if trimmed_c and sum(trimmed_c.values()):
+            exits[0]["lines"].append(f"clusters: {_groups(trimmed_c)}")
+        holding = "" if clusters["level"] == "cluster" else " (holding each group)"
+        steps[-1]["detail"] += f"; clusters{holding}: {_groups(cf['clusters_analysed'])}"
     return steps
