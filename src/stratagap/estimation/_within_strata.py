@@ -40,6 +40,11 @@ from .._base.linalg import COLLINEAR_TOL, LEVERAGE_TOL, hc2_ols, ordered_indepen
 #: model, the stratum for main effects). Common practice: about 10 observations per parameter
 #: (Harrell 2015, section 4.4, from memory).
 SPLINE_UNITS_PER_COLUMN = 10
+#: A covariate's spline needs this many distinct values per column of its own (its linear and
+#: spline columns) in each group of a stratum (our rule): a covariate measured on clusters has
+#: only as many values as clusters, and a nearly saturated spline in each group extrapolates
+#: wildly to the other group's values. An integer age (about 45 values) keeps its 5-knot spline.
+SPLINE_DISTINCT_PER_COLUMN = 4
 
 
 def _screen_columns(Xc: np.ndarray, t: np.ndarray, names):
@@ -101,6 +106,42 @@ def difference_of_means(y: np.ndarray, t: np.ndarray):
     return a, tau, cov, note
 
 
+def _drop_thin_splines(X, t, names, n_linear, k):
+    """``X`` and ``names`` without the spline columns of covariates too thin for them, and notes.
+
+    Why: a covariate with too few distinct values in a group cannot carry a spline there.
+
+    The guard of k units per column counts units; a covariate measured on clusters (a hospital's
+    size) has only as many values as there are clusters, and a spline in it, fitted in each group
+    apart, then extrapolates wildly to the other group's values (seen: one stratum estimate of
+    -20,000 on an outcome of SD 1.5). Each covariate with spline columns needs k distinct values
+    per column of its own (its linear column and its spline columns) in each group
+    (:data:`SPLINE_DISTINCT_PER_COLUMN`).
+    """
+    width = {}
+    for name in names[n_linear:]:
+        base = name.split(": spline")[0]
+        width[base] = width.get(base, 1) + 1
+    linear = {name: j for j, name in enumerate(names[:n_linear])}
+    thin, notes = set(), []
+    for base, q in width.items():
+        j = linear.get(base)
+        if j is None:
+            continue
+        for label, g in (("exposed", 1), ("reference", 0)):
+            distinct = np.unique(X[t == g, j]).size
+            if distinct < k * q:
+                thin.add(base)
+                notes.append(f"'{base}' linear here: its spline needs >= {k * q} distinct values "
+                             f"in each group ({k} per column), the {label} group has {distinct}")
+                break
+    if not thin:
+        return X, names, notes
+    cols = list(range(n_linear)) + [j for j in range(n_linear, X.shape[1])
+                                    if names[j].split(": spline")[0] not in thin]
+    return X[:, cols], [names[j] for j in cols], notes
+
+
 def fit_stratum(y, t, X, *, estimand: str, min_extra: int, names, n_linear=None):
     """Fit one stratum. Returns a dict: a, tau, cov (2x2 of (a, tau)), model, reason, columns.
 
@@ -112,14 +153,22 @@ def fit_stratum(y, t, X, *, estimand: str, min_extra: int, names, n_linear=None)
     difference of means.
     """
     n_linear = X.shape[1] if n_linear is None else int(n_linear)
+    thin_notes = []
+    if n_linear < X.shape[1]:
+        X, names, thin_notes = _drop_thin_splines(X, t, list(names), n_linear,
+                                                  SPLINE_DISTINCT_PER_COLUMN)
     if n_linear >= X.shape[1]:
-        return _fit_ladder(y, t, X, estimand=estimand, min_extra=min_extra, names=names)
+        fit = _fit_ladder(y, t, X, estimand=estimand, min_extra=min_extra, names=names)
+        if thin_notes:
+            fit["reason"] = "; ".join(thin_notes + [fit["reason"]])
+        return fit
     n = len(y)
     n1 = int(t.sum())
     n0 = n - n1
     tf = t.astype(float)
     centre = X.mean(axis=0) if estimand == "ate" else X[t == 1].mean(axis=0)
     keep, Z, notes = _screen_columns(X - centre, tf, names)
+    notes = thin_notes + notes
     p = Z.shape[1]
     k = SPLINE_UNITS_PER_COLUMN
     tried = []
