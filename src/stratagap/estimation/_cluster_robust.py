@@ -119,7 +119,11 @@ def cluster_sandwich(D, y, groups, C, *, kind="CR2") -> ClusterSandwich:
 
 def _adjust(Qg, Lg):
     """``(I - Q_g Q_g')^(-1/2) L_g`` from the thin SVD of ``Q_g`` (Bell & McCaffrey 2002)."""
-    U, s, _ = np.linalg.svd(Qg, full_matrices=False)
+    try:
+        U, s, _ = np.linalg.svd(Qg, full_matrices=False)
+    except np.linalg.LinAlgError:  # LAPACK's divide-and-conquer can fail to converge on finite
+        from scipy import linalg   # input; the slower QR-iteration driver does not
+        U, s, _ = linalg.svd(Qg, full_matrices=False, lapack_driver="gesvd")
     one_minus = 1.0 - s * s  # eigenvalues of I - H_gg on the span of U (1 elsewhere)
     with np.errstate(divide="ignore"):
         # Moore-Penrose square root: a zero eigenvalue maps to zero (Pustejovsky & Tipton 2018)

@@ -76,7 +76,7 @@ def stratum_design(y, t, X, labels, per_stratum, names, estimand):
         Z = Xs[:, cols]
         Z = Z - (Z.mean(axis=0) if estimand == "ate" else Z[ts == 1].mean(axis=0))
         parts = [np.ones(m.sum()), ts, Z]
-        if entry["model"] == "interactions":
+        if entry["model"] in ("interactions", "linear interactions"):
             parts.append(ts[:, None] * Z)
         block = np.column_stack(parts)
         blocks.append((m, block, width))
