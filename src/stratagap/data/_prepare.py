@@ -435,7 +435,7 @@ def _missing_outcome(group, miss_y):
     if abs(m1 / n1 - m0 / n0) > 0.02 and p < 0.05:
         warnings.warn(f"the outcome is missing for {m1 / n1:.1%} of the exposed and {m0 / n0:.1%} of the "
                       f"reference group (p = {p:.2g}); complete-case analysis may be biased: consider the "
-                      "censoring_weights option (inverse-probability-of-censoring weights)",
+                      "`censoring_weights` option (inverse-probability-of-censoring weights)",
                       MissingDataWarning, stacklevel=3)
     return out, p
 
