@@ -66,16 +66,16 @@ def _enumerated_p(values, t, labels, gamma, cuts):
     return p
 
 
-def test_monte_carlo_matches_weighted_enumeration_on_a_tiny_design():
+def test_monte_carlo_matches_weighted_enumeration_on_a_tiny_linear_form():
     values, t, labels = _tiny()
     gamma = 2.0
     b = _Bounder(values, t, labels, "ate", "mean_difference", "greater")
-    cuts = selected_cuts(b.design, gamma)
+    cuts = selected_cuts(b.form, gamma)
     # groups of equal-size strata come sorted by (n, n1): here stratum 0 (5, 2) then 1 (6, 3)
     per_stratum = [int(cuts[0][0]), int(cuts[1][0])]
     exact = _enumerated_p(values, t, labels, gamma, per_stratum)
     B = 20000
-    got = monte_carlo_at_allocation(b.design, [gamma], seed=5, resamples=B)
+    got = monte_carlo_at_allocation(b.form, [gamma], seed=5, resamples=B)
     se = math.sqrt(exact * (1 - exact) / B)
     assert abs(got["p"][0] - exact) < 4 * se + 1.0 / B, (got["p"][0], exact)
 
@@ -84,8 +84,8 @@ def test_same_uniforms_make_the_estimate_nondecreasing_in_gamma_at_a_fixed_cut()
     values, t, labels = _tiny()
     b = _Bounder(values, t, labels, "ate", "mean_difference", "greater")
     grid = [1.5, 2.0, 3.0, 5.0]
-    cuts = [tuple(int(k) for c in selected_cuts(b.design, g) for k in c) for g in grid]
-    got = monte_carlo_at_allocation(b.design, grid, seed=2, resamples=3000)["p"]
+    cuts = [tuple(int(k) for c in selected_cuts(b.form, g) for k in c) for g in grid]
+    got = monte_carlo_at_allocation(b.form, grid, seed=2, resamples=3000)["p"]
     for (c1, p1), (c2, p2) in zip(zip(cuts, got), zip(cuts[1:], got[1:])):
         if c1 == c2:
             assert p2 >= p1

@@ -24,18 +24,18 @@ Two bounds, always of the statistic the core test reported:
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 
 import numpy as np
 from scipy import optimize
 
 from .._base.checks import check_alpha
 from ..errors import InputError
-from .._base.jsonable import jsonable as _jsonable
 from .._base.layout import layout_for
 from ..inference import Statistic
 from ._nchyper import _cut_moments, _normal_sf, _perm_moments
 from . import _gamma_monte_carlo as _mc
+from ._gamma_results import GammaBounds, SensitivityValue, anchor_at_one
 from ._gamma_pairs import PairsBound, is_pairs
 from ._gamma_binary import _binary_exact_p, _binary_normal_p, _binary_setup, _convolution_cost
 
@@ -64,98 +64,9 @@ _METHOD_TEXT = {
 }
 
 
-# ----------------------------------------------------------------------------- results
-@dataclass(frozen=True)
-class GammaBounds:
-    """Upper bounds on the one-sided p-value over a grid of Gamma.
-
-    Attributes
-    ----------
-    gammas : list of float
-    p_upper : list of float
-        The bound to quote: the exact bound (method "exact"), the normal bound ("normal_binary"),
-        the exact worst case of matched pairs ("pairs_exact") or its Monte Carlo estimate
-        ("pairs_monte_carlo"), or the conservative end of the bracket ("bracket").
-    p_separable : list of float
-        The separable value (lower end of the bracket; equals `p_upper` for the binary methods;
-        for pairs, the normal approximation at the worst-case allocation).
-    method : str
-        "exact", "normal_binary" or "bracket"; `method_text` says it in words.
-    statistic, direction, estimand : str
-    observed : float
-        The observed statistic, on the scale of the requested direction (negated for "less").
-    n_strata : int
-    moments : str
-        "exact" or "large-stratum approximation" (noncentral hypergeometric moments).
-    """
-
-    gammas: list
-    p_upper: list
-    p_separable: list
-    method: str
-    method_text: str
-    statistic: str
-    direction: str
-    estimand: str
-    observed: float
-    n_strata: int
-    moments: str = "exact"
-    at_one: str = "bound"  # "bound", or where the Gamma = 1 value came from (see anchor_at_one)
-    p_monte_carlo: list | None = None  # per Gamma: None, or the estimate at the selected allocation
-    monte_carlo: dict | None = None    # label, resamples, mc_se per Gamma, what the number means
-
-    def to_dict(self) -> dict:
-        d = {k: getattr(self, k) for k in ("method", "method_text", "statistic", "direction", "estimand",
-                                           "observed", "n_strata", "moments", "at_one", "monte_carlo")}
-        mc = self.p_monte_carlo or [None] * len(self.gammas)
-        d["curve"] = [{"gamma": g, "p_upper": p, "p_separable": q, "p_monte_carlo": m}
-                      for g, p, q, m in zip(self.gammas, self.p_upper, self.p_separable, mc)]
-        return _jsonable(d)
-
-
-@dataclass(frozen=True)
-class SensitivityValue:
-    """The Gamma at which the one-sided p-value bound reaches alpha.
-
-    Attributes
-    ----------
-    gamma : float
-        Sensitivity value from the bound to quote (conservative end for a bracket); 1 when
-        not significant at Gamma = 1, `cap` when the bound stays below alpha up to the cap.
-    gamma_separable : float
-        The same from the separable value (upper end of the Gamma bracket; equals `gamma` for
-        the binary methods).
-    flag : str
-        "ok", "not significant at Gamma=1" or "> cap" (for `gamma`); "ok (the bound jumps across
-        alpha at this Gamma)" when the bound is discontinuous at the root (separable end only).
-    flag_separable : str
-    alpha : float
-        The one-sided level used; `alpha_note` says whether it is alpha or alpha/2 per side.
-    p_at_gamma : float
-        The bound evaluated at `gamma` (equals alpha when flag is "ok").
-    """
-
-    gamma: float
-    gamma_separable: float
-    flag: str
-    flag_separable: str
-    alpha: float
-    alpha_note: str
-    cap: float
-    p_at_gamma: float
-    method: str
-    statistic: str
-    direction: str
-    estimand: str
-    moments: str = "exact"
-
-    def to_dict(self) -> dict:
-        return _jsonable({k: getattr(self, k) for k in self.__dataclass_fields__})
-
-
 # ----------------------------------------------------------------------------- input
 @dataclass
-class _Design:
+class _LinearForm:
     groups: list = field(default_factory=list)   # [(n, n1, V (G, n) sorted)] for strata with both groups
     coef: list = field(default_factory=list)     # per group: (G,) weight of S_s in T
     const: float = 0.0                           # T = sum coef * S + const
@@ -189,7 +100,7 @@ def _check(values, t, labels, estimand, statistic, direction):
     return values[keep], t[keep].astype(np.int8), labels[keep].astype(np.int64)
 
 
-def _design(values, t, layout, statistic, sign):
+def _linear_form(values, t, layout, statistic, sign):
     """Per-stratum sorted values and the linear map from exposed sums S_s to the statistic."""
     inv = layout.codes
     n_s, n1_s = layout.n.astype(np.int64), layout.n1.astype(np.int64)
@@ -202,7 +113,7 @@ def _design(values, t, layout, statistic, sign):
     S = layout.exposed_sums(v[:, None], t)[0]
     # T = sum_s (coef_s S_s + const_s), the core test's statistic in linear form
     coef, const_s = Statistic.of(statistic, layout, v[:, None]).linear_form()
-    d = _Design(n_strata=layout.n_strata)
+    d = _LinearForm(n_strata=layout.n_strata)
     d.observed = float(np.sum(coef * S + const_s))
     # strata with one group only: their S_s is fixed by design
     d.const = float(np.sum(const_s) + np.sum((coef * S)[~both]))
@@ -253,20 +164,20 @@ class _Bounder:
         self.statistic, self.estimand = statistic, estimand
         layout = layout_for(layout, labels, t, estimand)  # rows set aside: dropped by _check
         if direction == "auto":
-            d = _design(values, t, layout, statistic, 1.0)
+            d = _linear_form(values, t, layout, statistic, 1.0)
             null_mean = sum(c @ _perm_moments(n, n1, V)[0] for (n, n1, V), c in zip(d.groups, d.coef))
             direction = "greater" if d.observed - d.const >= null_mean else "less"
         self.direction = direction
         sign = 1.0 if direction == "greater" else -1.0
         self.binary = statistic == "sum" and np.isin(values, (0.0, 1.0)).all()
-        self.design = _design(values, t, layout, statistic, sign)
+        self.form = _linear_form(values, t, layout, statistic, sign)
         self.moments = "exact"
         self._cache = {}
         if self.binary:
             self.raw, self.count = _binary_setup(values, t, layout, sign)
             self.method = "exact" if _convolution_cost(self.raw) <= EXACT_CONVOLUTION_BUDGET else "normal_binary"
-        elif is_pairs(self.design):  # matched pairs: the worst case is known exactly
-            self.pairs = PairsBound(self.design, seed=seed)
+        elif is_pairs(self.form):  # matched pairs: the worst case is known exactly
+            self.pairs = PairsBound(self.form, seed=seed)
             self.method = self.pairs.method
         else:
             self.method = "bracket"
@@ -283,7 +194,7 @@ class _Bounder:
             return p, p
         if self.method.startswith("pairs"):  # quoted: the worst case; beside it, its normal value
             return self.pairs(gamma), self.pairs.normal(gamma)
-        p_sep, p_con, ex = _bracket_p(self.design, gamma, self._cache)
+        p_sep, p_con, ex = _bracket_p(self.form, gamma, self._cache)
         if not ex:
             self.moments = "large-stratum approximation"
         return p_con, p_sep
@@ -357,10 +268,10 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
     if monte_carlo_level is not None and b.method == "bracket":
         where = _mc.disagreeing(gammas, p_up, p_sep, monte_carlo_level)
         if where:
-            got = _mc.monte_carlo_at_allocation(b.design, where, seed=seed, cache=b._cache)
+            got = _mc.monte_carlo_at_allocation(b.form, where, seed=seed, cache=b._cache)
             at = dict(zip(where, got["p"]))
             p_mc = [at.get(g) for g in gammas]
-            pairs = all(n == 2 for n, _n1, _V in b.design.groups)
+            pairs = all(n == 2 for n, _n1, _V in b.form.groups)
             mc = {"label": _mc.LABEL, "resamples": got["resamples"],
                   "mc_se": dict(zip((str(g) for g in where), got["mc_se"])),
                   "level": monte_carlo_level,
@@ -371,7 +282,7 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
                   "where": "each Gamma > 1 at which the bracket's ends fall on either side of the level"}
     return GammaBounds(gammas=list(gammas), p_upper=list(p_up), p_separable=list(p_sep), method=b.method,
                        method_text=_METHOD_TEXT[b.method], statistic=statistic, direction=b.direction,
-                       estimand=estimand, observed=b.design.observed, n_strata=b.design.n_strata,
+                       estimand=estimand, observed=b.form.observed, n_strata=b.form.n_strata,
                        moments=b.moments, p_monte_carlo=p_mc, monte_carlo=mc)
 
 
@@ -402,23 +313,6 @@ def _root_from_test(f, alpha, cap, p_at_one):
     if f(1.0) > alpha:  # the normal bound disagrees with the test at Gamma = 1 itself
         return 1.0, "significant at Gamma=1 only"
     return _root(f, alpha, cap)
-
-
-def anchor_at_one(bounds: GammaBounds, p_at_one: float, engine: str) -> GammaBounds:
-    """The curve anchored at the test's own one-sided p-value.
-
-    At Gamma = 1 the sensitivity model is the randomization distribution of the test, so the
-    test's p-value (from whatever engine it used) is the value there. The worst-case p-value
-    does not decrease as Gamma grows (a larger Gamma allows every allocation a smaller one
-    allows; Rosenbaum 2002, sec. 4.3), so for Gamma > 1 each end of the normal bracket is
-    raised to at least that value.
-    """
-    p_up = [p_at_one if g == 1.0 else max(p, p_at_one) for g, p in zip(bounds.gammas, bounds.p_upper)]
-    p_sep = [p_at_one if g == 1.0 else max(p, p_at_one)
-             for g, p in zip(bounds.gammas, bounds.p_separable)]
-    return replace(bounds, p_upper=p_up, p_separable=p_sep,
-                   at_one=f"the test's own one-sided p-value ({engine} engine); for Gamma > 1 "
-                          "at least that value")
 
 
 def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_difference", direction="auto",

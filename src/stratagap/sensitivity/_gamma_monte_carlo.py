@@ -38,10 +38,10 @@ RESAMPLES = 2000
 BATCH = 250
 
 
-def selected_cuts(design, gamma, cache=None) -> list:
+def selected_cuts(form, gamma, cache=None) -> list:
     """Per group of strata, the number K of units with u = 1 at the separable vertex (G,)."""
     out = []
-    for n, n1, V in design.groups:
+    for n, n1, V in form.groups:
         mu, var, _hi, _lo, _ex = _cut_moments(n, n1, V, gamma, cache)
         best = mu.max(axis=1, keepdims=True)
         tol = 1e-12 * np.maximum(np.abs(mu).max(axis=1, keepdims=True), 1.0)
@@ -61,17 +61,17 @@ def nch_inverse_cdf(u, n, K, n1, gamma, cache=None) -> np.ndarray:
     return (u[:, :, None] > cdf[None, :, :]).sum(axis=2)
 
 
-def monte_carlo_at_allocation(design, gammas, *, seed: int, resamples: int = RESAMPLES,
+def monte_carlo_at_allocation(form, gammas, *, seed: int, resamples: int = RESAMPLES,
                               cache=None) -> dict:
     """One-sided p-values P(T >= T_obs) at the selected allocation for each Gamma.
 
-    ``design`` is the bound's prepared design (sorted values per group of equal-size strata
+    ``form`` is the bound's prepared linear form of the statistic (sorted values per group of equal-size strata
     and the statistic's linear form). Returns ``{"p": [...], "mc_se": [...], "resamples": B}``;
     p = (1 + count) / (1 + B) (Phipson & Smyth 2010), mc_se = sqrt(p (1 - p) / B).
     """
     gammas = [float(g) for g in gammas]
-    cuts = [selected_cuts(design, g, cache) for g in gammas]
-    target = design.observed - design.const
+    cuts = [selected_cuts(form, g, cache) for g in gammas]
+    target = form.observed - form.const
     tie = 1e-13 * max(abs(target), 1.0)
     rng = substream(seed, "gamma monte carlo")
     counts = np.zeros(len(gammas), dtype=np.int64)
@@ -79,7 +79,7 @@ def monte_carlo_at_allocation(design, gammas, *, seed: int, resamples: int = RES
     while done < resamples:
         b = min(BATCH, resamples - done)
         total = np.zeros((len(gammas), b))
-        for gi, ((n, n1, V), c) in enumerate(zip(design.groups, design.coef)):
+        for gi, ((n, n1, V), c) in enumerate(zip(form.groups, form.coef)):
             G = V.shape[0]
             u = rng.random((b, G))
             priority = rng.random((b, G, n))

@@ -54,26 +54,26 @@ MONTE_CARLO_BUDGET = 2e8
 BATCH = 50
 
 
-def is_pairs(design) -> bool:
+def is_pairs(form) -> bool:
     """Every stratum with both groups is a pair (and at least one pair)."""
-    return bool(design.groups) and all(n == 2 for n, _n1, _V in design.groups)
+    return bool(form.groups) and all(n == 2 for n, _n1, _V in form.groups)
 
 
 class PairsBound:
     """The worst-case tail P(T >= T_obs) at each Gamma, prepared once for a design of pairs.
 
-    ``design`` is the Gamma bounder's prepared design (per group of equal-size strata the sorted
+    ``form`` is the Gamma bounder's prepared linear form of the statistic (per group of equal-size strata the sorted
     values, sign applied for the direction, and the statistic's coefficients).
     """
 
-    def __init__(self, design, seed: int = 0, resamples: int = RESAMPLES):
-        lo = np.concatenate([V[:, 0] for _n, _n1, V in design.groups])
-        hi = np.concatenate([V[:, 1] for _n, _n1, V in design.groups])
-        c = np.concatenate(design.coef)
+    def __init__(self, form, seed: int = 0, resamples: int = RESAMPLES):
+        lo = np.concatenate([V[:, 0] for _n, _n1, V in form.groups])
+        hi = np.concatenate([V[:, 1] for _n, _n1, V in form.groups])
+        c = np.concatenate(form.coef)
         a = c * (hi - lo)
-        base = design.const + float(np.sum(c * lo))
-        self.target = design.observed - base            # sum a_s B_s must reach this
-        self.tie = TIE_RTOL * max(abs(design.observed), abs(base), 1e-300)
+        base = form.const + float(np.sum(c * lo))
+        self.target = form.observed - base            # sum a_s B_s must reach this
+        self.tie = TIE_RTOL * max(abs(form.observed), abs(base), 1e-300)
         a = a[a > 0]
         self.values, self.counts = np.unique(a, return_counts=True)
         self.n_nonzero = int(a.size)
