@@ -288,3 +288,21 @@ def test_summary_shows_the_threshold_when_significant(small_result):
     summary = render_summary(data)
     assert f"Γ threshold {data['sensitivity']['gamma_threshold']:.2f}" in summary
     assert "[difference scale]" not in summary  # same scale as the headline: no label
+
+
+def test_a_cross_check_that_differs_from_the_headline_is_named():
+    """1.96 x sqrt(SE_h^2 + SE_c^2) rule (issue 10 item 6): the row flagged by the estimation
+    stage is named with its z; an unflagged table says nothing of the kind."""
+    from stratagap.render.verdict import _cross_check_sentence
+
+    rows = [{"method": "IPW", "measure": "difference", "estimate": 11.3, "ci_low": 9.0,
+             "ci_high": 13.6, "headline_gap_z": 4.2, "differs_from_headline": True},
+            {"method": "AIPW", "measure": "difference", "estimate": 3.3, "ci_low": 2.0,
+             "ci_high": 4.6, "headline_gap_z": 0.3, "differs_from_headline": False}]
+    text = _cross_check_sentence({"rows": rows}, "mean difference", 0.0)
+    assert ("1 cross-check differs from the headline by more than 1.96 combined standard "
+            "errors: IPW (z = 4.20)") in text
+    assert "AIPW (z" not in text
+    rows[0]["differs_from_headline"] = False
+    assert "combined standard errors" not in _cross_check_sentence({"rows": rows},
+                                                                   "mean difference", 0.0)

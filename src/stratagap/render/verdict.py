@@ -139,6 +139,15 @@ def _cross_check_sentence(cross_checks, measure, null) -> str | None:
         text.append(f"Cross-check estimators ({measure}) range from {_fmt(min(ests))} to "
                     f"{_fmt(max(ests))}; {excluding} of {len(same)} have a CI excluding the null "
                     f"value {null:g}.")
+    differ = [r for r in same if _get(r, "differs_from_headline")]
+    if differ:
+        named = ", ".join(f"{_get(r, 'method')} (z = {_fmt(_get(r, 'headline_gap_z'))})"
+                          for r in differ)
+        text.append(f"{len(differ)} cross-check{'' if len(differ) == 1 else 's'} "
+                    f"differ{'s' if len(differ) == 1 else ''} from the headline by "
+                    f"more than 1.96 combined standard errors: {named}; the estimators rest on "
+                    "different models, so read the cross-check table before the headline (the "
+                    "rule under-flags, as the estimates are positively correlated).")
     if other:
         noun = "estimator is" if other == 1 else "estimators are"
         text.append(f"{other} cross-check {noun} on the difference scale (see the cross-check "
