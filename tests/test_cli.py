@@ -140,3 +140,16 @@ def test_one_stratum_is_said_to_be_no_subclassification():
         make_strata(score, t, estimand="ate", n_strata=1)
     assert any(issubclass(w.category, StrataWarning) and "no subclassification" in str(w.message)
                for w in caught)
+
+
+def test_help_shows_the_options_in_groups(capsys):
+    from stratagap.cli import main
+    import pytest as _pytest
+    with _pytest.raises(SystemExit):
+        main(["analyze", "--help"])
+    out = capsys.readouterr().out
+    positions = [out.index(f"\n{name}:\n") for name in ("data", "design", "test", "sensitivity",
+                                                         "output")]
+    assert positions == sorted(positions)
+    assert out.index("--gamma-grid") > positions[3] and out.index("--resamples") > positions[2]
+    assert "1 or true is exposed" in out

@@ -53,7 +53,8 @@ _OPTIONS = [
      "'age + I(age**2) + C(role)'; used for balance checks too"),
     ("--terms", "terms", str, "continuous covariates as spline (default, natural cubic "
      "splines) or linear terms; --formula overrides"),
-    ("--exposed-value", "exposed_value", str, "value of --exposure that marks the exposed group"),
+    ("--exposed-value", "exposed_value", str, "value of --exposure that marks the exposed group "
+     "(not needed for 0/1 or true/false, where 1 or true is exposed)"),
     ("--outcome-type", "outcome_type", str, "auto (default), binary or continuous"),
     ("--outcome-event", "outcome_event", str, "value of a two-valued outcome counted as the event"),
     ("--estimand", "estimand", str, "ate (default) or att"),
@@ -102,17 +103,36 @@ def as_flags(text: str) -> str:
     return re.sub(r"`([a-z_]+)(?:=([^`]*))?`", flag, text)
 
 
+#: --help shows the options in these groups, in this order.
+_GROUP_TITLES = {
+    "data": ("exposure", "outcome", "covariates", "formula", "terms", "exposed_value",
+             "outcome_type", "outcome_event", "missing", "negative_control", "cluster",
+             "cluster_level"),
+    "design": ("estimand", "n_strata", "strata_method", "strata_column", "design", "per_exposed",
+               "caliper_sd", "same_value_on", "min_per_group", "trim", "score_model", "folds",
+               "truncate_weights"),
+    "test": ("statistic", "alternative", "engine", "resamples", "seed", "alpha", "measure",
+             "batch_size"),
+    "sensitivity": ("gamma_grid",),
+    "output": (),
+}
+
+
 def _build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="stratagap", description=(
         "Does the gap between two non-randomized groups survive adjustment for measured "
         "confounders? Observational evidence only; not medical advice."))
     sub = parser.add_subparsers(dest="command", parser_class=_Parser)
     analyze = sub.add_parser("analyze", help="analyse a data file")
-    analyze.add_argument("data", nargs="?", help="CSV, Parquet, Stata (.dta) or SAS (.xpt) file")
-    analyze.add_argument("--spec", help="TOML analysis file; flags given here override it")
-    analyze.add_argument("--encoding", help="text encoding of a CSV file (default: UTF-8)")
+    analyze.add_argument("data", nargs="?", help="CSV, Parquet, Stata (.dta), SAS (.xpt), SPSS "
+                         "(.sav) or Excel (.xlsx) file")
+    groups = {name: analyze.add_argument_group(name) for name in _GROUP_TITLES}
+    groups["data"].add_argument("--spec", help="TOML analysis file; flags given here override it")
+    groups["data"].add_argument("--encoding", help="text encoding of a CSV file (default: UTF-8)")
     for flag, dest, typ, text in _OPTIONS:
-        analyze.add_argument(flag, dest=dest, type=str, default=None, help=text)
+        group = next(g for g, members in _GROUP_TITLES.items() if dest in members)
+        groups[group].add_argument(flag, dest=dest, type=str, default=None, help=text)
+    analyze = groups["data"]  # the two switches below belong with the data options
     analyze.add_argument("--censoring-weights", dest="censoring_weights", action="store_const",
                          const=True, default=None,
                          help="weight complete cases by inverse probability of an observed outcome")
@@ -120,7 +140,7 @@ def _build_parser() -> argparse.ArgumentParser:
                          const=True, default=None,
                          help="pool levels of a categorical covariate with fewer than 10 rows "
                               "into one level (needed when a covariate has very many levels)")
-    _add_output_options(analyze)
+    _add_output_options(groups["output"])
     demo = sub.add_parser("demo", help="simulate the invented shift-work study and analyse it")
     demo.add_argument("--seed", default="2026", help="seed of the simulated data and the analysis")
     demo.add_argument("--n", default="3000", help="number of simulated staff (default 3000)")
