@@ -151,5 +151,5 @@ def test_help_shows_the_options_in_groups(capsys):
     positions = [out.index(f"\n{name}:\n") for name in ("data", "design", "test", "sensitivity",
                                                          "output")]
     assert positions == sorted(positions)
-    assert out.index("--gamma-grid") > positions[3] and out.index("--resamples") > positions[2]
+    assert out.index("\n  --gamma-grid") > positions[3] and out.index("\n  --resamples") > positions[2]
     assert "1 or true is exposed" in out
