@@ -180,14 +180,9 @@ def fit_stratum(y, t, X, *, estimand: str, min_extra: int, names, n_linear=None)
         tried.append("main effects")
     elif p:
         notes.append(f"splines need >= {k * p} units ({k} per column, {p} columns); found {n}")
-    for model in tried:
-        cols = [np.ones(n), tf, Z] + ([tf[:, None] * Z] if model == "interactions" else [])
-        beta, cov, why = hc2_ols(np.column_stack(cols), y)
-        if beta is not None:
-            return {"a": float(beta[0]), "tau": float(beta[1]), "cov": cov[:2, :2],
-                    "model": model, "reason": "; ".join(notes) or "all checks passed",
-                    "columns": [names[j] for j in keep]}
-        notes.append(f"{model}: {why}")
+    fit = _first_estimable(tried, y, tf, Z, notes, [names[j] for j in keep])
+    if fit is not None:
+        return fit
     fit = _fit_ladder(y, t, X[:, :n_linear], estimand=estimand, min_extra=min_extra,
                       names=names[:n_linear])
     if fit["model"] != "difference of means":
@@ -195,6 +190,23 @@ def fit_stratum(y, t, X, *, estimand: str, min_extra: int, names, n_linear=None)
     fit["reason"] = "; ".join(notes + ([] if fit["reason"] == "all checks passed"
                                        else [fit["reason"]]))
     return fit
+
+
+def _first_estimable(models, y, tf, Z, notes, columns):
+    """The first of ``models`` ("interactions", "main effects") that HC2 OLS can estimate.
+
+    Each failure is added to ``notes``; None when none is estimable.
+    """
+    n = len(y)
+    for model in models:
+        cols = [np.ones(n), tf, Z] + ([tf[:, None] * Z] if model == "interactions" else [])
+        beta, cov, why = hc2_ols(np.column_stack(cols), y)
+        if beta is not None:
+            return {"a": float(beta[0]), "tau": float(beta[1]), "cov": cov[:2, :2],
+                    "model": model, "reason": "; ".join(notes) or "all checks passed",
+                    "columns": columns}
+        notes.append(f"{model}: {why}")
+    return None
 
 
 def _fit_ladder(y, t, X, *, estimand: str, min_extra: int, names):
@@ -217,14 +229,9 @@ def _fit_ladder(y, t, X, *, estimand: str, min_extra: int, names):
         tried.append("main effects")
     else:
         notes.append("no covariate varies within the stratum")
-    for model in tried:
-        cols = [np.ones(n), tf, Z] + ([tf[:, None] * Z] if model == "interactions" else [])
-        beta, cov, why = hc2_ols(np.column_stack(cols), y)
-        if beta is not None:
-            return {"a": float(beta[0]), "tau": float(beta[1]), "cov": cov[:2, :2],
-                    "model": model, "reason": "; ".join(notes) or "all checks passed",
-                    "columns": [names[j] for j in keep]}
-        notes.append(f"{model}: {why}")
+    fit = _first_estimable(tried, y, tf, Z, notes, [names[j] for j in keep])
+    if fit is not None:
+        return fit
     a, tau, cov, note = difference_of_means(y, tf)
     if note:
         notes.append(note)
