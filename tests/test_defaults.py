@@ -248,3 +248,23 @@ def test_headline_risk_ratio_ci_is_exp_log_estimate_plus_minus_z_se():
     z = stats.norm.ppf(0.975)
     assert adj.ci_low == pytest.approx(adj.estimate * math.exp(-z * adj.se), rel=TIGHT)
     assert adj.ci_high == pytest.approx(adj.estimate * math.exp(z * adj.se), rel=TIGHT)
+
+
+def test_gamma_bounds_beyond_one_are_those_of_the_tests_residuals():
+    """Above Gamma = 1 the bounds are computed on the values the test ran on: the residuals of
+    the covariance adjustment (recomputed here with statsmodels), not the raw outcome."""
+    from stratagap.sensitivity import gamma_bounds
+
+    table = _confounded()
+    res = _analyze(table, engine="normal")
+    labels, t, y = res.arrays["labels"], res.arrays["t"], res.arrays["y"]
+    X = _reference_design(table)[res.arrays["row_ids"][res.arrays["used"]]]
+    r = sm.OLS(y, np.column_stack([X, pd.get_dummies(labels).to_numpy(float)])).fit().resid
+    grid = [g["gamma"] for g in res.sensitivity.gamma_curve]
+    ref = gamma_bounds(r, t, labels, estimand="ate", statistic="mean_difference",
+                       direction=res.sensitivity.gamma_direction, gammas=grid)
+    got = res.sensitivity.gamma_curve
+    p_one = got[0]["p_upper"]
+    for g, row, up in zip(grid, got, ref.p_upper):
+        if g > 1.0:
+            assert row["p_upper"] == pytest.approx(max(up, p_one), rel=1e-6)
