@@ -120,3 +120,17 @@ def test_significance_at_gamma_one_follows_the_test(p_test, expected):
         assert normal.flag == "not significant at Gamma=1"  # the normal value alone says not
     assert out.gamma_threshold_detail.flag == expected
     assert out.gamma_threshold == 1.0
+
+
+def test_an_extreme_headline_gets_no_e_value_and_a_warning_not_a_crash():
+    """exp(0.91 d) overflows (or its inverse underflows to 0) beyond d of about 770 SDs."""
+    from stratagap.sensitivity import headline_e_value
+
+    rng = np.random.default_rng(2)
+    y = rng.normal(size=100)
+    t = (np.arange(100) % 2).astype(np.int8)
+    extreme = SimpleNamespace(estimate=-2e4, ci_low=-3e4, ci_high=-1e4, se=5e3)
+    with pytest.warns(ModelWarning, match="E-value not computed"):
+        assert headline_e_value(extreme, None, y, t, binary=False, alpha=0.05) is None
+    usual = SimpleNamespace(estimate=0.5, ci_low=0.2, ci_high=0.8, se=0.15)
+    assert headline_e_value(usual, None, y, t, binary=False, alpha=0.05) is not None

@@ -252,5 +252,12 @@ def headline_e_value(adjusted, risk_ratio, y, t, *, binary: bool, alpha: float) 
         warnings.warn("E-value not computed: the standardized risk ratio or a confidence limit "
                       "is undefined (a standardized risk of 0 or 1).", ModelWarning)
         return None
+    sd = pooled_sd(y, t)
+    d = abs(adjusted.estimate) / sd if sd > 0 else math.inf
+    if not math.isfinite(SMD_TO_LOG_RR * d) or SMD_TO_LOG_RR * d > 700:  # exp() would overflow
+        warnings.warn(f"E-value not computed: the headline is {d:.3g} pooled SDs from the null, "
+                      "beyond what the conversion RR ~ exp(0.91 d) can represent; check the "
+                      "per-stratum estimates.", ModelWarning)
+        return None
     return e_value(adjusted.estimate, adjusted.ci_low, adjusted.ci_high, measure="difference",
-                   outcome_sd=pooled_sd(y, t), se=adjusted.se, alpha=alpha)
+                   outcome_sd=sd, se=adjusted.se, alpha=alpha)
