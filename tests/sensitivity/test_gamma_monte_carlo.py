@@ -1,4 +1,4 @@
-"""The Monte Carlo p-value at the allocation the separable Gamma bound selects.
+"""The Monte Carlo p-value at the allocation the Gamma bound selects.
 
 Independent values: scipy.stats.nchypergeom_fisher (reference library) for the inverse CDF of
 Fisher's noncentral hypergeometric law, and a brute-force enumeration of every assignment on a
@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from stratagap.sensitivity._gamma_bounds import _Bounder, gamma_bounds
+from stratagap.sensitivity._gamma_bounds import _Bounder, gamma_bounds, sensitivity_value
 from stratagap.sensitivity._gamma_monte_carlo import (monte_carlo_at_allocation, nch_inverse_cdf,
                                                       selected_cuts)
 
@@ -96,18 +96,22 @@ def test_bounds_add_the_estimate_only_where_the_bracket_straddles_the_level():
     labels = np.repeat(np.arange(3), 40).astype(np.int64)
     t = (rng.random(labels.size) < 0.5).astype(np.int8)
     values = rng.exponential(size=labels.size) + 0.6 * t
-    # a fine grid where the bound crosses 0.05 (between Gamma 1.5 and 2 here), so that some
-    # points fall between the bracket's ends
-    grid = [1.0, 1.2, 1.5] + [float(g) for g in np.round(np.linspace(1.7, 1.95, 101), 4)] + [3.0]
+    # points between the Gammas at which the provable end and the separable value reach 0.05
+    # (1.88139 and 1.88143 here: the search over cut allocations nearly closes the bracket)
+    sv = sensitivity_value(values, t, labels, direction="greater")
+    assert sv.gamma_provable < sv.gamma_separable
+    grid = [1.0, 1.2, 1.5] + [float(g) for g in np.linspace(sv.gamma_provable, sv.gamma_separable,
+                                                           9)[1:-1]] + [3.0]
     plain = gamma_bounds(values, t, labels, gammas=grid)
     level = 0.05
     got = gamma_bounds(values, t, labels, gammas=grid, monte_carlo_level=level, seed=1)
     assert got.p_upper == plain.p_upper and got.p_separable == plain.p_separable
-    straddle = [g > 1 and s <= level < u for g, u, s in zip(grid, plain.p_upper, plain.p_separable)]
+    # the trigger: the separable value and the provable end fall on either side of the level
+    straddle = [g > 1 and s <= level < u for g, u, s in zip(grid, plain.p_provable, plain.p_separable)]
     assert [m is not None for m in (got.p_monte_carlo or [None] * len(grid))] == straddle
     assert any(straddle)
     assert got.monte_carlo["resamples"] == 2000 and "lower estimate" in got.monte_carlo["meaning"]
-    # the estimate at one allocation cannot exceed the conservative end by more than MC error
-    for m, u, g in zip(got.p_monte_carlo, got.p_upper, grid):
+    # the estimate at one allocation cannot exceed the provable end by more than MC error
+    for m, u, g in zip(got.p_monte_carlo, got.p_provable, grid):
         if m is not None:
             assert m <= u + 4 * got.monte_carlo["mc_se"][str(g)]

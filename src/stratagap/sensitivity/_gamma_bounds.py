@@ -37,6 +37,7 @@ from ._nchyper import _cut_moments, _normal_sf, _perm_moments
 from . import _gamma_monte_carlo as _mc
 from ._gamma_results import GammaBounds, SensitivityValue, anchor_at_one
 from ._gamma_pairs import PairsBound, is_pairs
+from ._gamma_search import CutSearch, search_cuts
 from ._gamma_binary import _binary_exact_p, _binary_normal_p, _binary_setup, _convolution_cost
 
 __all__ = ["GammaBounds", "SensitivityValue", "gamma_bounds", "sensitivity_value", "anchor_at_one",
@@ -59,8 +60,9 @@ _METHOD_TEXT = {
     "pairs_normal": "matched pairs: normal approximation with the exact moments of the worst-case allocation "
                     "(each pair puts probability Gamma / (1 + Gamma) on its larger value; Rosenbaum 2002, "
                     "ch. 4); too many pairs to draw from it within the budget",
-    "bracket": "normal approximation bracket: [separable (Gastwirth, Krieger & Rosenbaum 2000), conservative "
-               "(per-stratum maximum mean and variance bound over all vertices)]",
+    "bracket": "normal approximation over cut allocations (u = 1 on the j largest values of each stratum; "
+               "Rosenbaum & Krieger 1990): the worst allocation found by a search from the separable one "
+               "(Gastwirth, Krieger & Rosenbaum 2000), quoted, with a provable upper end beside it",
 }
 
 
@@ -131,28 +133,21 @@ def _linear_form(values, t, layout, statistic, sign):
 
 
 def _bracket_p(d, gamma, cache=None):
-    """(separable p, conservative p, moments exact?) of the normal approximation at Gamma."""
-    mu_sep = var_sep = mu_max = var_max = var_min = 0.0
-    exact = True
-    for (n, n1, V), c in zip(d.groups, d.coef):
-        if gamma == 1.0:
-            m, v = _perm_moments(n, n1, V)
-            mu_sep += c @ m; var_sep += (c * c) @ v
-            mu_max += c @ m; var_max += (c * c) @ v; var_min += (c * c) @ v
-            continue
-        mu, var, var_hi, var_lo, ex = _cut_moments(n, n1, V, gamma, cache)
-        exact &= ex
-        best = mu.max(axis=1, keepdims=True)
-        tol = 1e-12 * np.maximum(np.abs(mu).max(axis=1, keepdims=True), 1.0)
-        v_at = np.where(mu >= best - tol, var, -np.inf).max(axis=1)  # ties -> larger variance (GKR 2000)
-        mu_sep += c @ best[:, 0]; var_sep += (c * c) @ v_at
-        mu_max += c @ best[:, 0]; var_max += (c * c) @ var_hi.max(axis=1); var_min += (c * c) @ var_lo.min(axis=1)
-    T = d.observed - d.const
-    p_sep = _normal_sf(T - mu_sep, var_sep)
-    diff = T - mu_max
-    p_con = _normal_sf(diff, var_max if diff >= 0 else var_min)
-    return p_sep, max(p_con, p_sep), exact
+    """The normal approximation over cut allocations at Gamma: (separable p, search).
 
+    ``search`` is the :class:`~._gamma_search.CutSearch` (best attained tail, provable end,
+    the allocation); at Gamma = 1 every allocation gives the randomization p-value.
+    """
+    if gamma == 1.0:
+        mu = var = 0.0
+        for (n, n1, V), c in zip(d.groups, d.coef):
+            m, v = _perm_moments(n, n1, V)
+            mu += c @ m; var += (c * c) @ v
+        p = _normal_sf(d.observed - d.const - mu, var)
+        return p, CutSearch(p_attained=p, p_provable=p, p_separable=p, cuts=[], exact=True, moments_exact=True,
+                            kappa_steps=0, single_steps=0)
+    found = search_cuts(d, gamma, cache)
+    return found.p_separable, found
 
 
 # ----------------------------------------------------------------------------- binary exact
@@ -173,6 +168,7 @@ class _Bounder:
         self.form = _linear_form(values, t, layout, statistic, sign)
         self.moments = "exact"
         self._cache = {}
+        self._searches = {}
         if self.binary:
             self.raw, self.count = _binary_setup(values, t, layout, sign)
             self.method = "exact" if _convolution_cost(self.raw) <= EXACT_CONVOLUTION_BUDGET else "normal_binary"
@@ -194,10 +190,22 @@ class _Bounder:
             return p, p
         if self.method.startswith("pairs"):  # quoted: the worst case; beside it, its normal value
             return self.pairs(gamma), self.pairs.normal(gamma)
-        p_sep, p_con, ex = _bracket_p(self.form, gamma, self._cache)
-        if not ex:
-            self.moments = "large-stratum approximation"
-        return p_con, p_sep
+        return self.search(gamma).p_attained, self._searches[float(gamma)][0]
+
+    def search(self, gamma) -> CutSearch:
+        """The bracket's search over cut allocations at Gamma (kept: the curve, the root and
+        the Monte Carlo step ask for the same Gamma more than once)."""
+        key = float(gamma)
+        if key not in self._searches:
+            p_sep, found = _bracket_p(self.form, key, self._cache)
+            if not found.moments_exact:
+                self.moments = "large-stratum approximation"
+            self._searches[key] = (p_sep, found)
+        return self._searches[key][1]
+
+    def provable(self, gamma) -> float:
+        """The provable upper end at Gamma (the quoted bound itself for every other method)."""
+        return self.search(gamma).p_provable if self.method == "bracket" else self(gamma)[0]
 
 
 def _check_gammas(gammas):
@@ -232,9 +240,9 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
     layout : :class:`stratagap._base.layout.StratumLayout`, optional
         The caller's layout of the rows with ``labels >= 0``; None builds it here.
     monte_carlo_level : float, optional
-        With a bracket, at each Gamma > 1 where its two ends fall on either side of this level,
-        add a Monte Carlo p-value at the allocation the separable end selects
-        (:mod:`stratagap.sensitivity._gamma_monte_carlo`), seeded from ``seed``.
+        With a bracket, at each Gamma > 1 where the separable value and the provable end fall
+        on either side of this level, add a Monte Carlo p-value at the allocation the search
+        selects (:mod:`stratagap.sensitivity._gamma_monte_carlo`), seeded from ``seed``.
 
     Returns
     -------
@@ -257,6 +265,8 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
     gammas = _check_gammas(gammas)
     b = _Bounder(values, t, labels, estimand, statistic, direction, layout, seed=seed)
     p_up, p_sep = zip(*(b(g) for g in gammas))
+    p_prov = [b.provable(g) for g in gammas]
+    exact_at = [b.search(g).exact for g in gammas] if b.method == "bracket" else None
     p_mc, mc = None, None
     if b.method == "pairs_monte_carlo":
         mc = {"label": "Monte Carlo from the worst-case allocation (matched pairs)",
@@ -266,9 +276,10 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
                          "approximation with the exact moments of the same allocation",
               "where": "every Gamma"}
     if monte_carlo_level is not None and b.method == "bracket":
-        where = _mc.disagreeing(gammas, p_up, p_sep, monte_carlo_level)
+        where = _mc.disagreeing(gammas, p_prov, p_sep, monte_carlo_level)
         if where:
-            got = _mc.monte_carlo_at_allocation(b.form, where, seed=seed, cache=b._cache)
+            got = _mc.monte_carlo_at_allocation(b.form, where, seed=seed, cache=b._cache,
+                                                cuts=[b.search(g).cuts for g in where])
             at = dict(zip(where, got["p"]))
             p_mc = [at.get(g) for g in gammas]
             pairs = all(n == 2 for n, _n1, _V in b.form.groups)
@@ -283,7 +294,8 @@ def gamma_bounds(values, t, labels, *, estimand="ate", statistic="mean_differenc
     return GammaBounds(gammas=list(gammas), p_upper=list(p_up), p_separable=list(p_sep), method=b.method,
                        method_text=_METHOD_TEXT[b.method], statistic=statistic, direction=b.direction,
                        estimand=estimand, observed=b.form.observed, n_strata=b.form.n_strata,
-                       moments=b.moments, p_monte_carlo=p_mc, monte_carlo=mc)
+                       moments=b.moments, p_monte_carlo=p_mc, monte_carlo=mc,
+                       p_provable=list(p_prov), exact_at=exact_at)
 
 
 def _root(f, alpha, cap):
@@ -358,9 +370,12 @@ def sensitivity_value(values, t, labels, *, estimand="ate", statistic="mean_diff
     b = _Bounder(values, t, labels, estimand, statistic, direction, layout, seed=seed)
     g_up, flag_up = _root_from_test(lambda g: b(g)[0], level, cap, p_at_one)
     g_sep, flag_sep = _root_from_test(lambda g: b(g)[1], level, cap, p_at_one)
+    g_prov, flag_prov = (g_up, flag_up) if b.method != "bracket" else _root_from_test(
+        b.provable, level, cap, p_at_one)
     if b.method == "pairs_monte_carlo" and flag_up.startswith("ok ("):
         # the estimate from fixed draws is a step function of Gamma: its root sits at a step
         flag_up = "ok (Monte Carlo estimate, a step function of Gamma: the root is at a step)"
     return SensitivityValue(gamma=g_up, gamma_separable=g_sep, flag=flag_up, flag_separable=flag_sep,
                             alpha=level, alpha_note=note, cap=cap, p_at_gamma=b(g_up)[0], method=b.method,
-                            statistic=statistic, direction=b.direction, estimand=estimand, moments=b.moments)
+                            statistic=statistic, direction=b.direction, estimand=estimand, moments=b.moments,
+                            gamma_provable=g_prov, flag_provable=flag_prov)

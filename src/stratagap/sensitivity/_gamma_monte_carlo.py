@@ -1,9 +1,10 @@
-"""Monte Carlo p-value at the allocation of hidden bias that the separable bound selects.
+"""Monte Carlo p-value at the allocation of hidden bias that the bound selects.
 
 Where the two normal ends of the Gamma bracket fall on either side of the level, the normal
 approximation cannot say whether the test survives. This draws the test statistic under the
 sensitivity model at one allocation: in each stratum u = 1 on the K largest values, K the cut
-the separable value chose (Gastwirth, Krieger & Rosenbaum 2000). In a stratum of n units with
+the search over cut allocations chose (:mod:`._gamma_search`; the separable one of Gastwirth,
+Krieger & Rosenbaum 2000 by default). In a stratum of n units with
 n1 exposed, the number X of exposed units among the K with u = 1 follows Fisher's noncentral
 hypergeometric law with odds Gamma (Rosenbaum 2002, sec. 4.4); given X, the exposed units within
 each u-class are a simple random sample.
@@ -62,15 +63,17 @@ def nch_inverse_cdf(u, n, K, n1, gamma, cache=None) -> np.ndarray:
 
 
 def monte_carlo_at_allocation(form, gammas, *, seed: int, resamples: int = RESAMPLES,
-                              cache=None) -> dict:
+                              cache=None, cuts=None) -> dict:
     """One-sided p-values P(T >= T_obs) at the selected allocation for each Gamma.
 
     ``form`` is the bound's prepared linear form of the statistic (sorted values per group of equal-size strata
-    and the statistic's linear form). Returns ``{"p": [...], "mc_se": [...], "resamples": B}``;
+    and the statistic's linear form). ``cuts``: per Gamma, the allocation (per group, the
+    number of units with u = 1); None takes the separable one (:func:`selected_cuts`). Returns ``{"p": [...], "mc_se": [...], "resamples": B}``;
     p = (1 + count) / (1 + B) (Phipson & Smyth 2010), mc_se = sqrt(p (1 - p) / B).
     """
     gammas = [float(g) for g in gammas]
-    cuts = [selected_cuts(form, g, cache) for g in gammas]
+    if cuts is None:
+        cuts = [selected_cuts(form, g, cache) for g in gammas]
     target = form.observed - form.const
     tie = 1e-13 * max(abs(target), 1.0)
     rng = substream(seed, "gamma monte carlo")

@@ -22,7 +22,12 @@ class GammaBounds:
     p_upper : list of float
         The bound to quote: the exact bound (method "exact"), the normal bound ("normal_binary"),
         the exact worst case of matched pairs ("pairs_exact") or its Monte Carlo estimate
-        ("pairs_monte_carlo"), or the conservative end of the bracket ("bracket").
+        ("pairs_monte_carlo"), or the worst cut allocation found ("bracket",
+        :mod:`._gamma_search`).
+    p_provable : list of float
+        An upper end the worst case over cut allocations provably does not exceed ("bracket");
+        the quoted bound itself for every other method. Where it equals ``p_upper``
+        (``exact_at``), the quoted value is the worst case over cut allocations.
     p_separable : list of float
         The separable value (lower end of the bracket; equals `p_upper` for the binary methods;
         for pairs, the normal approximation at the worst-case allocation).
@@ -50,13 +55,19 @@ class GammaBounds:
     at_one: str = "bound"  # "bound", or where the Gamma = 1 value came from (see anchor_at_one)
     p_monte_carlo: list | None = None  # per Gamma: None, or the estimate at the selected allocation
     monte_carlo: dict | None = None    # label, resamples, mc_se per Gamma, what the number means
+    p_provable: list | None = None     # per Gamma (None only for results built by hand)
+    exact_at: list | None = None       # "bracket": per Gamma, do the quoted and provable ends agree?
 
     def to_dict(self) -> dict:
         d = {k: getattr(self, k) for k in ("method", "method_text", "statistic", "direction", "estimand",
                                            "observed", "n_strata", "moments", "at_one", "monte_carlo")}
         mc = self.p_monte_carlo or [None] * len(self.gammas)
-        d["curve"] = [{"gamma": g, "p_upper": p, "p_separable": q, "p_monte_carlo": m}
-                      for g, p, q, m in zip(self.gammas, self.p_upper, self.p_separable, mc)]
+        prov = self.p_provable or list(self.p_upper)
+        exact = self.exact_at or [None] * len(self.gammas)
+        d["curve"] = [{"gamma": g, "p_upper": p, "p_provable": r, "p_separable": q,
+                       "p_monte_carlo": m, **({} if e is None else {"exact": e})}
+                      for g, p, r, q, m, e in zip(self.gammas, self.p_upper, prov, self.p_separable,
+                                                  mc, exact)]
         return _jsonable(d)
 
 
@@ -67,8 +78,11 @@ class SensitivityValue:
     Attributes
     ----------
     gamma : float
-        Sensitivity value from the bound to quote (conservative end for a bracket); 1 when
-        not significant at Gamma = 1, `cap` when the bound stays below alpha up to the cap.
+        Sensitivity value from the bound to quote (for a bracket, the worst cut allocation
+        found); 1 when not significant at Gamma = 1, `cap` when the bound stays below alpha up
+        to the cap.
+    gamma_provable : float
+        The same from the provable end (at most `gamma`; equals it for every other method).
     gamma_separable : float
         The same from the separable value (upper end of the Gamma bracket; equals `gamma` for
         the binary methods).
@@ -95,6 +109,8 @@ class SensitivityValue:
     direction: str
     estimand: str
     moments: str = "exact"
+    gamma_provable: float | None = None
+    flag_provable: str | None = None
 
     def to_dict(self) -> dict:
         return _jsonable({k: getattr(self, k) for k in self.__dataclass_fields__})
@@ -112,6 +128,8 @@ def anchor_at_one(bounds: GammaBounds, p_at_one: float, engine: str) -> GammaBou
     p_up = [p_at_one if g == 1.0 else max(p, p_at_one) for g, p in zip(bounds.gammas, bounds.p_upper)]
     p_sep = [p_at_one if g == 1.0 else max(p, p_at_one)
              for g, p in zip(bounds.gammas, bounds.p_separable)]
-    return replace(bounds, p_upper=p_up, p_separable=p_sep,
+    p_prov = None if bounds.p_provable is None else [
+        p_at_one if g == 1.0 else max(p, p_at_one) for g, p in zip(bounds.gammas, bounds.p_provable)]
+    return replace(bounds, p_upper=p_up, p_separable=p_sep, p_provable=p_prov,
                    at_one=f"the test's own one-sided p-value ({engine} engine); for Gamma > 1 "
                           "at least that value")

@@ -1,8 +1,8 @@
 """Sensitivity figures: the Γ curve (figure 5) and the tipping curve (figure 6).
 
 Figure 5 draws the result's upper bounds on the one-sided p-value over Γ (Rosenbaum 2002,
-ch. 4; for the covariance-adjusted statistic the bracket between the separable value of
-Gastwirth, Krieger & Rosenbaum 2000 and the conservative end), the one-sided level and the
+ch. 4; for the covariance-adjusted statistic the worst cut allocation found, between the
+separable value of Gastwirth, Krieger & Rosenbaum 2000 and the provable end), the one-sided level and the
 sensitivity value found by root-finding. Figure 6 draws the result's tipping curve for a
 binary unmeasured confounder (Lin, Psaty & Kronmal 1998) and the measured covariates as
 numbered reference points, with a side table of their names and signed values.
@@ -46,13 +46,15 @@ def plot_gamma_curve(result) -> Figure:
     up = np.array([np.nan if c.get("p_upper") is None else max(c["p_upper"], _FLOOR) for c in curve])
     sep = np.array([np.nan if c.get("p_separable") is None else max(c["p_separable"], _FLOOR)
                     for c in curve])
-    bracket = bounds.get("method") == "bracket" and np.nanmax(np.abs(up - sep)) > 0
+    prov = np.array([max(c.get("p_provable") or c.get("p_upper") or np.nan, _FLOOR) for c in curve])
+    bracket = bounds.get("method") == "bracket" and np.nanmax(np.abs(prov - sep)) > 0
     if bracket:
-        ax.fill_between(g, sep, up, color=REFERENCE, alpha=0.15, label="bracket of the bound")
+        ax.fill_between(g, sep, prov, color=REFERENCE, alpha=0.15,
+                        label="from the separable value to the provable end")
         ax.plot(g, sep, color=REFERENCE, linestyle=(0, (3, 1.5)), marker="v", markersize=4,
-                linewidth=1.2, label="separable value (lower end)")
+                linewidth=1.2, label="separable value")
     ax.plot(g, up, color=REFERENCE, marker="^", markersize=5, linewidth=2.0,
-            label="conservative bound (quoted)" if bracket else "upper bound")
+            label="worst allocation found (quoted)" if bracket else "upper bound")
     ax.set_yscale("log")
     if level:
         ax.axhline(level, color=ALERT, linestyle=(0, (5, 2)), linewidth=1.2,
@@ -70,7 +72,7 @@ def plot_gamma_curve(result) -> Figure:
     elif flag != "ok":
         ax.text(0.98, 0.04, f"sensitivity value: {flag}", transform=ax.transAxes, ha="right",
                 color=INK, fontsize=8.5)
-    lowest = np.nanmin(np.concatenate([up, sep, [level or 1.0]]))  # keep the level line in view
+    lowest = np.nanmin(np.concatenate([up, sep, prov, [level or 1.0]]))  # keep the level line in view
     ax.set_ylim(max(_FLOOR / 3, lowest / 3), 1.6)
     ax.set_xlabel("Γ  (1 = no hidden bias)")
     ax.set_ylabel("p-value bound (log scale)")
