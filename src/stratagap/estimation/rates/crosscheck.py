@@ -12,7 +12,8 @@
   and ``t = 0`` averaged over the target units weighted by person-time (as the headline),
   delta-method SE from the robust covariance.
 
-Both target the person-time-weighted standardized rates of the headline
+Both target the person-time-weighted standardized rates of the headline. Rows are on the
+difference scale (measure "difference", events per unit of person-time)
 (:mod:`stratagap.estimation.rates.standardized`); rows are rate differences (events per unit of
 person-time), with the rate ratio in ``details``.
 
@@ -60,7 +61,7 @@ def _row(method, mu, cov, *, alpha, estimand, label, se_method, notes=(), detail
     details = dict(details or {})
     details["rate_ratio"] = _ratio_details(mu, cov, z)
     return CrossCheckRow(method=method, estimate=est, se=se, ci_low=est - z * se,
-                         ci_high=est + z * se, measure="rate difference", se_scale="difference",
+                         ci_high=est + z * se, measure="difference", se_scale="difference",
                          estimand=label, estimand_kind="marginal",
                          population="everyone analysed" if estimand == "ate" else "the exposed",
                          mu1=float(mu[0]), mu0=float(mu[1]), se_method=se_method,
@@ -159,5 +160,5 @@ def rate_cross_checks(y, t, person_time, X, *, estimand, alpha=0.05, score=None,
     source = ("logistic refit on X (maximum likelihood)" if fit["score_ok"]
               else "given score (refit separated)")
     return CrossCheckResult(rows=rows, weights=_diagnostics(fit, t, estimand, None),
-                            estimand=estimand, measure="rate difference", outcome_type="rate",
+                            estimand=estimand, measure="difference", outcome_type="rate",
                             alpha=alpha, score_source=source)
