@@ -45,8 +45,9 @@ TEST_LABELS = {
 
 
 def _interval(est) -> dict:
+    """An Estimate as a small block; ``se`` is on the ``scale`` ("log" for a ratio)."""
     return {"estimate": est.estimate, "ci_low": est.ci_low, "ci_high": est.ci_high,
-            "se_log": est.se, "method": est.method}
+            "se": est.se, "scale": est.scale, "method": est.method}
 
 
 def _scaled(est, per) -> dict:
