@@ -21,7 +21,9 @@ Model rule (events per column, common practice after Peduzzi et al. 1995): a gro
 all covariate columns when its events in the stratum are at least ``EVENTS_PER_COLUMN`` times
 their number, else the linear design (one column per covariate) under the same rule, else no
 covariates (the group's crude rate ``E_gs / PT_gs`` in the stratum). A fit that fails or does
-not converge drops to the next rung; each stratum records its rungs and why.
+not converge, whose robust covariance is not positive, or whose predictions for the target
+units exceed ``EXTRAPOLATION_LIMIT`` times the largest rate it fits to its own units, drops to
+the next rung; each stratum records its rungs and why.
 
 Variance (delta method): ``Var m_gs = g' V g`` with ``g = sum_j PT_j r_g(x_j) z_j / PT_T`` and
 ``V`` the model's HC0 covariance (the crude rung: ``E_gs / PT_gs^2``); the two groups' models
@@ -53,10 +55,14 @@ from statsmodels.tools.sm_exceptions import ConvergenceWarning, PerfectSeparatio
 from ..._base.linalg import ordered_independent_columns
 from .._estimate import StratifiedEstimate
 
-__all__ = ["standardized_rate_difference", "EVENTS_PER_COLUMN"]
+__all__ = ["standardized_rate_difference", "EVENTS_PER_COLUMN", "EXTRAPOLATION_LIMIT"]
 
 #: A group's Poisson model in a stratum uses k covariate columns only with >= 10 k events.
 EVENTS_PER_COLUMN = 10
+#: A group's model may not predict, for a target unit, more than this multiple of the largest
+#: rate it fits to its own units (our rule, against spline extrapolation into the other group's
+#: covariate range; the rung below is used instead and the reason recorded).
+EXTRAPOLATION_LIMIT = 3.0
 
 
 def _fit(y, pt, Z):
@@ -96,10 +102,21 @@ def _group_mean(y, pt, Xg, Xtarget, pt_target, n_linear):
         params, cov = fit
         Zt = np.column_stack([np.ones(Xtarget.shape[0]), Xtarget[:, cols]])[:, keep]
         rate = np.exp(Zt @ params)
+        own = np.exp(Z[:, keep] @ params)
         total = pt_target.sum()
         m = float(np.sum(pt_target * rate) / total)
         grad = (pt_target * rate) @ Zt / total  # delta method: d m / d params
-        return m, float(grad @ cov @ grad), rate, f"Poisson model on {name}", rungs
+        var = float(grad @ cov @ grad)
+        if not np.isfinite(var) or var < 0:  # a near-singular design: the sandwich broke down
+            rungs.append(f"{name}: the robust covariance is not positive (near-dependent "
+                         "columns)")
+            continue
+        if rate.max() > EXTRAPOLATION_LIMIT * own.max():
+            rungs.append(f"{name}: predictions for the target units reach "
+                         f"{rate.max() / own.max():.3g} times the largest fitted rate of the "
+                         f"group (limit {EXTRAPOLATION_LIMIT:g}): extrapolation")
+            continue
+        return m, var, rate, f"Poisson model on {name}", rungs
     m = events / float(pt.sum())  # crude rung: the group's rate in the stratum
     return (m, events / float(pt.sum()) ** 2, np.full(Xtarget.shape[0], m),
             "crude rate (no covariates)", rungs)
