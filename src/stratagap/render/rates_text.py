@@ -9,7 +9,8 @@ from __future__ import annotations
 
 from .formatting import format_number as _n
 
-__all__ = ["is_rate", "summary_lines", "verdict_sentences", "baseline_rows", "flow_detail"]
+__all__ = ["is_rate", "summary_lines", "verdict_sentences", "baseline_rows", "flow_detail",
+           "effect_blocks"]
 
 
 def is_rate(followup) -> bool:
@@ -99,3 +100,19 @@ def flow_detail(data: dict) -> str:
     col = block["person_time_column"]
     return (f"; events exposed {ev['exposed']:,.0f}, reference {ev['reference']:,.0f}; "
             f"person-time ({col}) exposed {_n(pt['exposed'])}, reference {_n(pt['reference'])}")
+
+
+def effect_blocks(data: dict) -> list[tuple[str, dict]]:
+    """(label, estimate-like block) rows for the report's estimates table (rate outcomes)."""
+    block = data.get("followup")
+    if not is_rate(block):
+        return []
+    adj = data["adjusted"]
+    col, per = block["person_time_column"], block["per"]
+    scaled = {**adj["rate_difference_per"], "measure": f"rate difference per {per:,} {col}",
+              "estimand": adj.get("estimand", ""), "population": adj.get("population", ""),
+              "method": "the headline, scaled"}
+    crude_rr = {**block["crude_rate_ratio"], "measure": "rate ratio",
+                "estimand": "crude (unadjusted)", "population": "all complete-case rows"}
+    return [(f"adjusted (headline) per {per:,} units of '{col}'", scaled),
+            ("crude rate ratio", crude_rr)]
