@@ -159,3 +159,16 @@ def test_cli_refuses_a_fractional_count(tmp_path, data, capsys):
     err = capsys.readouterr().err
     assert code == 2 and "spells" in err and "Traceback" not in err
     assert len(err.strip().splitlines()) == 1
+
+
+def test_statistic_is_the_stratified_mean_difference_of_events_minus_expected(data):
+    # statsmodels GLM (stratum effects only, offset log PT) gives the values; the statistic is
+    # sum_s w_s (mean exposed - mean reference), w_s = n_s / n (ATE), recomputed here
+    res = stratagap.analyze(data, **{**KW, "statistic": "difference"})
+    y, pt, labels, t = (res.arrays[k] for k in ("y", "followup", "labels", "t"))
+    D = (labels[:, None] == np.unique(labels)[None, :]).astype(float)
+    r = y - sm.GLM(y, D, family=sm.families.Poisson(), offset=np.log(pt)).fit().fittedvalues
+    T = sum(np.mean(labels == s) * (r[(labels == s) & (t == 1)].mean()
+                                    - r[(labels == s) & (t == 0)].mean())
+            for s in np.unique(labels))
+    assert res.to_dict()["test"]["statistic"] == pytest.approx(T, rel=1e-7, abs=1e-12)
