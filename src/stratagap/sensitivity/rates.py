@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import math
 import warnings
+from dataclasses import replace
 
 import numpy as np
 
@@ -44,8 +45,8 @@ def rate_ratio_e_value(rate_ratio, alpha):
                       "(no events in a group).", ModelWarning, stacklevel=2)
         return None
     ev = e_value(*vals, measure="rr", alpha=alpha)
-    return ev.__class__(**{**ev.__dict__, "computed_from": ev.computed_from.replace(
-        "risk ratio", "Mantel-Haenszel rate ratio", 1), "conversion": "rate ratio as risk ratio"})
+    return replace(ev, computed_from=ev.computed_from.replace(
+        "risk ratio", "Mantel-Haenszel rate ratio", 1), conversion="rate ratio as risk ratio")
 
 
 def rate_sensitivity(values, t, labels, X, y, person_time, terms, *, test, estimand,
