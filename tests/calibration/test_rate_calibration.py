@@ -9,7 +9,7 @@ closed form). Two studies of m datasets each:
   7 %) and coverage of 0.
 
 Bands are binomial (:mod:`calibration.bands`): the widest band around the nominal rate whose
-false-alarm probability at the nominal rate is at most 0.5 %, so the small CI run (m = 60 by
+false-alarm probability at the nominal rate is at most 0.5 %, so the small CI run (m = 150 by
 default) only catches gross failures; ``STRATAGAP_RATE_SIM_M=400`` runs the fuller study
 (minutes), and ``python tests/calibration/test_rate_calibration.py 400`` prints its numbers.
 """
@@ -28,7 +28,7 @@ from scipy import stats
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 from calibration.rates_scenario import make_rate_data, true_rate_difference  # noqa: E402
 
-M = int(os.environ.get("STRATAGAP_RATE_SIM_M", "60"))
+M = int(os.environ.get("STRATAGAP_RATE_SIM_M", "150"))
 N = 1000
 KW = dict(exposure="shift", exposed_value="nights", outcome="spells", person_time="years",
           covariates=["age_z", "smoker"], resamples=199)
