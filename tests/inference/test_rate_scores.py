@@ -5,7 +5,7 @@ import pytest
 import statsmodels.api as sm
 
 from stratagap.errors import InputError
-from stratagap.inference.rate_scores import fit_stratified_poisson, rate_scores
+from stratagap.inference.rate_scores import rate_scores
 
 
 def _data(seed=3, n=400, S=4):

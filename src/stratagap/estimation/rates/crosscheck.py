@@ -36,7 +36,7 @@ from scipy import stats
 
 from ..._base.linalg import ordered_independent_columns
 from .._crosscheck_result import CrossCheckResult, CrossCheckRow
-from .._ipw import _weight_parts, fit_score, sandwich
+from .._ipw import _weight_parts, sandwich
 from ..crosscheck import _diagnostics, _score_or_raise
 
 __all__ = ["ipw_rates", "poisson_offset", "rate_cross_checks"]
