@@ -17,6 +17,7 @@ instead of quoting a sensitivity threshold.
 from __future__ import annotations
 
 from .formatting import format_number as _fmt, format_p_relation as _fmt_p
+from .rates_text import verdict_sentences as _rate_sentences
 
 __all__ = ["write_verdict", "RATIO_MEASURES", "measure_code"]
 
@@ -67,10 +68,13 @@ def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_c
     if not ratio or _get(crude, "measure") == measure:  # quoted only on the headline's scale
         parts.append(f"Crude {_get(crude, 'measure', measure)}: {_fmt(_get(crude, 'estimate'))} "
                      f"({_ci(level, _get(crude, 'ci_low'), _get(crude, 'ci_high'))}).")
+    rate_how, rate_more = _rate_sentences(spec, adjusted)  # rate outcomes: unit, per 1,000
     parts.append(
-        f"Adjusted {measure} ({population}, regression within propensity-score strata): "
+        f"Adjusted {measure} ({population}, "
+        f"{rate_how or 'regression within propensity-score strata'}): "
         f"{_fmt(_get(adjusted, 'estimate'))} ({_ci(level, lo, hi)}), which "
         f"{'excludes' if excludes else 'includes'} the null value {null:g}.")
+    parts.extend(rate_more)
     parts.append(f"The stratified permutation test of the sharp null (no effect for anyone) "
                  f"gives p {_fmt_p(p)} ({_get(main, 'alternative', spec.alternative)}).")
     if max_smd is not None:

@@ -13,6 +13,7 @@ import math
 from ..formatting import describe_terms, format_value as _f
 from ..tables import strata_with_estimates
 from .baseline import BASELINE_COLUMNS, analysed_raw, baseline_table, header as baseline_header
+from ..rates_text import effect_blocks as rate_effect_blocks, flow_detail as rate_flow_detail
 from .flow import flow_steps
 
 __all__ = ["build_context", "spec_toml"]
@@ -70,6 +71,12 @@ def _test_rows(test):
     return rows
 
 
+def _flow_steps(data):
+    steps = flow_steps(data["flow"], data.get("clusters"))
+    steps[-1]["detail"] += rate_flow_detail(data)  # rate outcomes: events and person-time
+    return steps
+
+
 def build_context(view, figures: dict, *, compact: bool) -> dict:
     data = view.data
     q = data["question"]
@@ -81,6 +88,7 @@ def build_context(view, figures: dict, *, compact: bool) -> dict:
                _estimate_row("plain stratified difference", adj.get("plain_stratified"), level),
                _estimate_row("constant effect by test inversion", adj.get("constant_effect"), level),
                _estimate_row("standardized risk ratio", adj.get("standardized_risk_ratio"), level)]
+    effects += [_estimate_row(label, est, level) for label, est in rate_effect_blocks(data)]
     for key, est in (adj.get("mantel_haenszel") or {}).items():
         if isinstance(est, dict):
             effects.append(_estimate_row(f"Mantel-Haenszel {key.replace('_', ' ')}", est, level))
@@ -103,7 +111,7 @@ def build_context(view, figures: dict, *, compact: bool) -> dict:
     run = getattr(view, "run", None) or {}
     return {
         "compact": compact, "q": q, "source": source, "data": data, "level": level,
-        "alpha": alpha, "flow": data["flow"], "flow_steps": flow_steps(data["flow"], data.get("clusters")),
+        "alpha": alpha, "flow": data["flow"], "flow_steps": _flow_steps(data),
         "clusters": data.get("clusters"),
         "warnings": data["warnings"], "overlap": data["overlap"],
         "propensity": data["propensity"], "balance": data["balance"],
