@@ -5,7 +5,7 @@ from __future__ import annotations
 import textwrap
 
 from .formatting import describe_terms, format_number as _n, format_p as _p
-from .verdict import NOT_SIGNIFICANT, measure_code
+from .verdict import NOT_SIGNIFICANT, measure_code, not_significant_phrase
 
 __all__ = ["render_summary"]
 
@@ -50,7 +50,7 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
     ev = sens["e_value"] or {}  # None when the E-value is undefined
     detail = sens.get("gamma_threshold_detail") or {}
     if detail.get("flag") == NOT_SIGNIFICANT:
-        gamma = "not significant without hidden bias (Γ = 1)"
+        gamma = not_significant_phrase()
     else:
         gamma = f"Γ threshold {_n(sens['gamma_threshold'])}"
     lines.append(f"  sensitivity: {gamma}; "

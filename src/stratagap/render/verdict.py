@@ -18,7 +18,8 @@ from __future__ import annotations
 
 from .formatting import format_number as _fmt, format_p_relation as _fmt_p
 
-__all__ = ["write_verdict", "RATIO_MEASURES", "measure_code"]
+__all__ = ["write_verdict", "gamma_sentence", "not_significant_phrase", "RATIO_MEASURES",
+           "measure_code"]
 
 #: Headline measure names on the ratio scale (null 1); every other measure is a difference.
 RATIO_MEASURES = ("risk ratio", "odds ratio")
@@ -26,6 +27,12 @@ RATIO_MEASURES = ("risk ratio", "odds ratio")
 _CODES = {"risk ratio": "rr", "odds ratio": "or"}
 #: The sensitivity value's flag when the one-sided test does not reject at Gamma = 1.
 NOT_SIGNIFICANT = "not significant at Gamma=1"
+
+
+def not_significant_phrase() -> str:
+    """The short words for a one-sided test that does not reject at Gamma = 1 (no threshold
+    number: there is none); the summary and the Gamma figure say it so."""
+    return "not significant without hidden bias (Γ = 1)"
 
 
 def _get(obj, name, default=None):
@@ -85,7 +92,7 @@ def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_c
                      f"{_fmt(_get(higher, 'permutation_p95'), 3)} at their 95th percentile): the strata "
                      f"alone do not balance them, and the result leans on the regression within "
                      f"strata, whose spline terms cover squares but not products of covariates.")
-    parts.append(_gamma_sentence(sensitivity))
+    parts.append(gamma_sentence(sensitivity))
     e_point = _get(sensitivity.e_value, "point")
     if e_point is not None:
         parts.append(f"E-value: {_fmt(e_point)} for the estimate and "
@@ -107,11 +114,14 @@ def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_c
     return " ".join(parts)
 
 
-def _gamma_sentence(sensitivity) -> str:
+def gamma_sentence(sensitivity) -> str:
+    """The sensitivity value in one sentence, from the result's sensitivity block (object or
+    dict): the threshold Gamma, or, when the one-sided test is not significant without hidden
+    bias, that fact and no threshold. The verdict and the report's sensitivity section."""
     detail = _get(sensitivity, "gamma_threshold_detail")
     flag = _get(detail, "flag", "ok")
-    gamma = sensitivity.gamma_threshold
-    level = _fmt(sensitivity.gamma_level, 3)
+    gamma = _get(sensitivity, "gamma_threshold")
+    level = _fmt(_get(sensitivity, "gamma_level"), 3)
     if flag == NOT_SIGNIFICANT or gamma is None:
         return (f"Without hidden bias (Γ = 1) the one-sided test is not significant at {level}, "
                 f"so there is no sensitivity threshold to report.")
