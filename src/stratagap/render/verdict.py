@@ -69,19 +69,22 @@ def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_c
     balanced = max_smd is not None and max_smd <= 0.1 and not higher_flag
     level = int(round(100 * (1 - spec.alpha)))
     population = _get(overlap, "estimand_label", spec.estimand.upper())
+    matched = getattr(spec, "design", "strata") == "match"
+    within = "within matched sets" if matched else "within propensity-score strata"
 
     parts = []
     if not ratio or _get(crude, "measure") == measure:  # quoted only on the headline's scale
         parts.append(f"Crude {_get(crude, 'measure', measure)}: {_fmt(_get(crude, 'estimate'))} "
                      f"({_ci(level, _get(crude, 'ci_low'), _get(crude, 'ci_high'))}).")
     parts.append(
-        f"Adjusted {measure} ({population}, regression within propensity-score strata): "
+        f"Adjusted {measure} ({population}, regression {within}): "
         f"{_fmt(_get(adjusted, 'estimate'))} ({_ci(level, lo, hi)}), which "
         f"{'excludes' if excludes else 'includes'} the null value {null:g}.")
     parts.append(f"The stratified permutation test of the sharp null (no effect for anyone) "
                  f"gives p {_fmt_p(p)} ({_get(main, 'alternative', spec.alternative)}).")
     if max_smd is not None:
-        parts.append(f"After stratification the largest absolute standardized mean difference is "
+        parts.append(f"After {'matching' if matched else 'stratification'} the largest absolute "
+                     f"standardized mean difference is "
                      f"{_fmt(max_smd, 3)} ({'within' if max_smd <= 0.1 else 'above'} the 0.1 threshold, "
                      f"common practice).")
     if higher_flag:

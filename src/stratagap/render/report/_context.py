@@ -10,12 +10,13 @@ from __future__ import annotations
 import json
 import math
 
-from ..formatting import describe_terms, format_value as _f
+from ..formatting import describe_terms, format_number, format_value as _f
 from ..verdict import NOT_SIGNIFICANT, gamma_sentence
 from ._matching import matching_context
 from ._rows import benchmark_rows, estimate_rows, strata_effect_label, strata_rows
-from .baseline import (BASELINE_COLUMNS, analysed_raw, baseline_table, crude_label,
-                       header as baseline_header)
+from .baseline import (BASELINE_COLUMNS, analysed_raw, baseline_table,
+                       header as baseline_header, trimming_note)
+from .figures_design import balance_label
 from .flow import flow_steps
 
 __all__ = ["build_context", "spec_toml"]
@@ -62,7 +63,7 @@ def before_label(data: dict) -> str:
     rule, so it says "(after trimming)" when trimming set units aside (the baseline table's
     crude column says the same)."""
     before = "SMD before matching" if data.get("matching") else "SMD before"
-    return before + crude_label(data)[len("Std. difference, crude"):]
+    return before + trimming_note(data)
 
 
 def build_context(view, figures: dict, *, compact: bool) -> dict:
@@ -88,9 +89,7 @@ def build_context(view, figures: dict, *, compact: bool) -> dict:
     tip = sens["tipping"]
     raw = analysed_raw(view)
     base = baseline_table(view)
-    balance_rows = [{**r, "label": r.get("covariate", "") if r.get("level") in (None, "")
-                     else f"{r.get('covariate')}: {r.get('level')}"}
-                    for r in data["balance"]["rows"]]
+    balance_rows = [{**r, "label": balance_label(r)} for r in data["balance"]["rows"]]
     hetero = []
     for key, h in data["heterogeneity"].items():
         if isinstance(h, dict):
@@ -128,5 +127,6 @@ def build_context(view, figures: dict, *, compact: bool) -> dict:
         "spec_toml": spec_toml(data), "command": run.get("command") or source.get("command"),
         "seed": data["spec"]["seed"], "run": run,
         "versions": (run.get("versions") or {}), "fmt": _f,
+        "num": format_number,  # fixed decimals: the SMD and KS columns (0.000, not 0.000397)
         "terms_text": describe_terms(data, knots=True),
     }

@@ -22,7 +22,7 @@ from ..tables import strata_with_estimates
 __all__ = ["estimate_rows", "strata_rows", "strata_effect_label", "benchmark_rows",
            "is_risk_difference", "PP_LABEL"]
 
-PP_LABEL = "risk difference (percentage points)"
+PP_LABEL = "risk difference (pp)"  # pp: percentage points, said in the captions
 
 
 def is_risk_difference(measure, binary: bool) -> bool:
