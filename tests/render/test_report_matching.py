@@ -118,3 +118,15 @@ def test_matched_run_end_to_end(matched_result):
     assert f"= {m['caliper']:.3f} on the logit scale" in text
     tree = parse(html)
     assert tree.rows_of("sg-strata-table") == m["matched_exposed"]  # one row per set
+
+
+def test_many_matched_sets_drawn_as_their_distribution():
+    from stratagap.render.report import plot_stratum_effects
+    view = matched_view()
+    view.data["adjusted"]["per_stratum"] = [
+        {"stratum": s, "n_exposed": 1, "n_reference": 1, "estimate": float(s % 7 - 3),
+         "se": None, "ci_low": None, "ci_high": None, "weight": 1 / 151, "model": "d"}
+        for s in range(151)]
+    fig = plot_stratum_effects(view)
+    assert fig.get_suptitle() == "Effect within each of the 151 matched sets"
+    assert "per matched set" in fig.axes[0]._left_title.get_text().replace("\n", " ")

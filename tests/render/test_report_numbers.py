@@ -272,3 +272,37 @@ def test_baseline_decimals_follow_the_typical_non_zero_value():
     row = baseline_table(view).query("characteristic == 'age'").iloc[0]
     assert "." not in row.exposed  # "0 (0 to 2,210)", not "0.000 (0.000 to 2,209.909)"
     assert header(view.data)[-1] == "Std. difference, within strata"
+
+
+def test_tipping_figure_on_the_ratio_scale_says_so():
+    view = handmade()
+    tip = view.data["sensitivity"]["tipping"]
+    tip["measure"] = "rr"
+    tip["tipping_curve"] = [{"prevalence_gap": g, "outcome_shift": 1 + 0.3 / g} for g in (0.1, 0.2, 0.4)]
+    for b in tip["benchmarks"]:
+        b["outcome_shift"] = 1.4
+    fig = plot_tipping(view)
+    label = fig.axes[0].get_ylabel()
+    assert "risk ratio (null = 1)" in label and "difference" not in label
+    assert any(tuple(ln.get_ydata()) == (1.0, 1.0) for ln in fig.axes[0].get_lines())
+
+
+@pytest.mark.filterwarnings("ignore")
+def test_one_numbering_of_strata_across_json_csv_messages_and_report(small_result, tmp_path):
+    """Every stratum number a person reads names the same stratum: results.json, strata.csv,
+    the model-choice messages and the report's table all count from 0."""
+    import csv
+    from stratagap.render.files import write_result
+    write_result(small_result, tmp_path, report=False)
+    data = small_result.to_dict()
+    ids = [row["stratum"] for row in data["strata"]]
+    assert ids == list(range(len(ids)))
+    with open(tmp_path / "strata.csv", newline="") as fh:
+        assert [int(r["stratum"]) for r in csv.DictReader(fh)] == ids
+    assert [r["stratum"] for r in strata_rows(data)] == ids
+    named = [int(n) for c in data["adjusted"]["choices"] for n in re.findall(r"stratum (\d+):", c)]
+    named += [int(n) for w in data["warnings"] for n in re.findall(r"stratum (\d+):", w["message"])]
+    assert named and set(named) <= set(ids)  # this run simplifies every stratum's model, 0 to 4
+    html = render_html(small_result)
+    first_cells = re.findall(r'<tr><td class="sg-n">(\d+)</td><td>[\d.]+ to', html)
+    assert [int(c) for c in first_cells] == ids

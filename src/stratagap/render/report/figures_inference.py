@@ -133,7 +133,8 @@ def plot_stratum_effects(result) -> Figure:
     same = ("ratio" in str(per_measure)) == ratio
     note = "" if same else f"; the {measure} headline is not on this scale"
     if len(per) > MANY_STRATA:
-        return _many_strata_effects(per, adj, per_measure, level, same)
+        return _many_strata_effects(per, adj, per_measure, level, same,
+                                    "matched sets" if v.data.get("matching") else "strata")
     fig, ax = new_figure("Effect within each propensity-score stratum",
                          f"{per_measure} per stratum, {level}% CI; marker area = stratum weight "
                          f"({adj.get('estimand', '')}){note}",
@@ -176,15 +177,16 @@ def plot_stratum_effects(result) -> Figure:
 MANY_STRATA = 40
 
 
-def _many_strata_effects(per, adj, per_measure, level, same) -> Figure:
+def _many_strata_effects(per, adj, per_measure, level, same, noun="strata") -> Figure:
     """Figure 4 for many small strata: a histogram of the stratum effects (weighted by the
     estimand's stratum weights), with the pooled estimate and its CI when on the same scale."""
     est = np.array([np.nan if s.get("estimate") is None else float(s["estimate"]) for s in per])
     w = np.array([float(s.get("weight") or 0) for s in per])
     ok = np.isfinite(est)
-    fig, ax = new_figure(f"Effect within each of the {len(per):,} strata",
-                         f"distribution of the {per_measure} per stratum (share of the estimand's "
-                         f"weight); band: pooled headline, {level}% CI")
+    one = "matched set" if noun == "matched sets" else "stratum"
+    fig, ax = new_figure(f"Effect within each of the {len(per):,} {noun}",
+                         f"distribution of the {per_measure} per {one} (share of the "
+                         f"estimand's weight); band: pooled headline, {level}% CI")
     if not ok.any():
         _empty(ax, "no per-stratum estimates on this result")
         return fig
