@@ -306,3 +306,16 @@ def test_one_numbering_of_strata_across_json_csv_messages_and_report(small_resul
     html = render_html(small_result)
     first_cells = re.findall(r'<tr><td class="sg-n">(\d+)</td><td>[\d.]+ to', html)
     assert [int(c) for c in first_cells] == ids
+
+
+def test_summary_writes_risk_differences_in_pp_with_the_risks():
+    from stratagap.render.summary import _effect
+    adjusted = {"estimate": -0.0046, "ci_low": -0.0420, "ci_high": 0.0328,
+                "measure": "risk difference", "risk_exposed": 0.1917, "risk_reference": 0.1963}
+    assert _effect(adjusted, True, "95% CI ") == ("-0.46 pp (95% CI -4.20 to 3.28); "
+                                                  "risks 19.2 % vs 19.6 %")
+    check = {"estimate": -0.0045, "ci_low": -0.0436, "ci_high": 0.0346, "measure": "difference",
+             "mu1": 0.1916, "mu0": 0.1961}
+    assert _effect(check, True) == "-0.45 pp (-4.36 to 3.46); risks 19.2 % vs 19.6 %"
+    assert _effect(dict(check, estimate=3.54, ci_low=2.57, ci_high=4.51), False) == \
+        "3.54 (2.57 to 4.51)"  # a continuous outcome keeps its units

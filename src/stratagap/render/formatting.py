@@ -24,7 +24,8 @@ from __future__ import annotations
 import math
 
 __all__ = ["format_p", "format_p_relation", "format_number", "format_value", "format_sig",
-           "column_decimals", "format_column", "format_pp", "format_risk", "describe_terms"]
+           "column_decimals", "format_column", "format_pp", "format_risk", "is_risk_difference",
+           "describe_terms"]
 
 #: Below this a p-value is written "< 0.0001": Monte Carlo and normal p-values carry no more.
 P_FLOOR = 1e-4
@@ -116,6 +117,12 @@ def format_pp(x, digits: int = 2) -> str:
 def format_risk(x, digits: int = 1) -> str:
     """A risk (a proportion) as a percentage: ``"19.2 %"``."""
     return "n/a" if _missing(x) else f"{100 * x:.{digits}f} %"
+
+
+def is_risk_difference(measure, binary: bool) -> bool:
+    """A difference of proportions: the headline's "risk difference", or a cross-check's
+    "difference" when the outcome is binary (written in percentage points)."""
+    return measure == "risk difference" or (binary and measure == "difference")
 
 
 def describe_terms(data: dict, *, knots: bool = False) -> str:

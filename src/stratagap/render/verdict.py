@@ -11,7 +11,8 @@ odds ratio, null 1) the crude comparison is quoted only when it is on the same s
 cross-check on the difference scale is named as such and not compared with the ratio null (the
 pipeline computes both on the headline's measure).
 When the test is not significant without hidden bias (Gamma = 1), the paragraph says so
-instead of quoting a sensitivity threshold.
+instead of quoting a sensitivity threshold. A risk difference is written in percentage points
+("-0.46 pp", not "-0.00"), as in the summary and the report.
 """
 
 from __future__ import annotations
@@ -27,6 +28,8 @@ RATIO_MEASURES = ("risk ratio", "odds ratio")
 _CODES = {"risk ratio": "rr", "odds ratio": "or"}
 #: The sensitivity value's flag when the one-sided test does not reject at Gamma = 1.
 NOT_SIGNIFICANT = "not significant at Gamma=1"
+#: The headline measure written in percentage points.
+RISK_DIFFERENCE = "risk difference"
 
 
 def not_significant_phrase() -> str:
@@ -48,7 +51,17 @@ def measure_code(measure: str) -> str:
     return _CODES.get(measure, "difference")
 
 
-def _ci(level, lo, hi):
+def _value(x, pp=False):
+    """A number of the paragraph; a risk difference in percentage points ("-0.46 pp", where
+    two decimals of the proportion would read "-0.00")."""
+    if not pp or x is None:
+        return _fmt(x)
+    return f"{_fmt(100 * x)} pp"
+
+
+def _ci(level, lo, hi, pp=False):
+    if pp and lo is not None and hi is not None:
+        return f"{level}% CI {_fmt(100 * lo)} to {_fmt(100 * hi)} pp"
     return f"{level}% CI {_fmt(lo)} to {_fmt(hi)}"
 
 
@@ -74,11 +87,14 @@ def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_c
 
     parts = []
     if not ratio or _get(crude, "measure") == measure:  # quoted only on the headline's scale
-        parts.append(f"Crude {_get(crude, 'measure', measure)}: {_fmt(_get(crude, 'estimate'))} "
-                     f"({_ci(level, _get(crude, 'ci_low'), _get(crude, 'ci_high'))}).")
+        crude_pp = _get(crude, "measure", measure) == RISK_DIFFERENCE
+        parts.append(f"Crude {_get(crude, 'measure', measure)}: "
+                     f"{_value(_get(crude, 'estimate'), crude_pp)} "
+                     f"({_ci(level, _get(crude, 'ci_low'), _get(crude, 'ci_high'), crude_pp)}).")
+    pp = measure == RISK_DIFFERENCE
     parts.append(
         f"Adjusted {measure} ({population}, regression {within}): "
-        f"{_fmt(_get(adjusted, 'estimate'))} ({_ci(level, lo, hi)}), which "
+        f"{_value(_get(adjusted, 'estimate'), pp)} ({_ci(level, lo, hi, pp)}), which "
         f"{'excludes' if excludes else 'includes'} the null value {null:g}.")
     parts.append(f"The stratified permutation test of the sharp null (no effect for anyone) "
                  f"gives p {_fmt_p(p)} ({_get(main, 'alternative', spec.alternative)}).")
@@ -149,8 +165,9 @@ def _cross_check_sentence(cross_checks, measure, null) -> str | None:
         excluding = sum(1 for r in same if _get(r, "ci_low") is not None
                         and _get(r, "ci_high") is not None
                         and not (_get(r, "ci_low") <= null <= _get(r, "ci_high")))
-        text.append(f"Cross-check estimators ({measure}) range from {_fmt(min(ests))} to "
-                    f"{_fmt(max(ests))}; {excluding} of {len(same)} have a CI excluding the null "
+        pp = measure == RISK_DIFFERENCE
+        text.append(f"Cross-check estimators ({measure}) range from {_value(min(ests), pp)} to "
+                    f"{_value(max(ests), pp)}; {excluding} of {len(same)} have a CI excluding the null "
                     f"value {null:g}.")
     differ = [r for r in same if _get(r, "differs_from_headline")]
     if differ:

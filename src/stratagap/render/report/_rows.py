@@ -16,19 +16,13 @@ Nothing is recomputed: every number is the result's own, rescaled at most by 100
 
 from __future__ import annotations
 
-from ..formatting import format_column, format_risk, format_value as _f
+from ..formatting import format_column, format_risk, format_value as _f, is_risk_difference
 from ..tables import strata_with_estimates
 
 __all__ = ["estimate_rows", "strata_rows", "strata_effect_label", "benchmark_rows",
            "is_risk_difference", "PP_LABEL"]
 
 PP_LABEL = "risk difference (pp)"  # pp: percentage points, said in the captions
-
-
-def is_risk_difference(measure, binary: bool) -> bool:
-    """A difference of proportions: the headline's "risk difference", or a cross-check's
-    "difference" when the outcome is binary."""
-    return measure == "risk difference" or (binary and measure == "difference")
 
 
 def _risks(est) -> str:
