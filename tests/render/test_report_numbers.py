@@ -319,3 +319,12 @@ def test_summary_writes_risk_differences_in_pp_with_the_risks():
     assert _effect(check, True) == "-0.45 pp (-4.36 to 3.46); risks 19.2 % vs 19.6 %"
     assert _effect(dict(check, estimate=3.54, ci_low=2.57, ci_high=4.51), False) == \
         "3.54 (2.57 to 4.51)"  # a continuous outcome keeps its units
+
+
+def test_null_figure_legend_sits_below_the_axes():
+    from stratagap.render.report import plot_null_distribution
+    fig = finish(plot_null_distribution(handmade()))
+    assert fig.axes[0].get_legend() is None and len(fig.legends) == 1
+    renderer = fig.canvas.get_renderer()
+    legend = fig.legends[0].get_window_extent(renderer)
+    assert legend.y1 <= fig.axes[0].get_window_extent(renderer).y0  # under the plot, not on it

@@ -99,7 +99,8 @@ def plot_null_distribution(result, *, bins: int = 50) -> Figure:
                 va="top", fontsize=8.5, color=INK,
                 bbox={"boxstyle": "round,pad=0.3", "fc": "white", "ec": NEUTRAL})
     ax.set_xlabel(label)
-    ax.legend(loc="upper left", fontsize=7.5)
+    fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncols=2,
+               fontsize=7.5)  # below the axes: clear of the bars and the observed value's box
     return fig
 
 
