@@ -328,3 +328,27 @@ def test_null_figure_legend_sits_below_the_axes():
     renderer = fig.canvas.get_renderer()
     legend = fig.legends[0].get_window_extent(renderer)
     assert legend.y1 <= fig.axes[0].get_window_extent(renderer).y0  # under the plot, not on it
+
+
+def test_ratio_rows_keep_two_decimals_beside_percentage_points():
+    view = _binary(handmade())
+    ratio = {"estimate": 0.98, "se": 0.104, "ci_low": 0.7986, "ci_high": 1.2027,
+             "measure": "risk ratio"}
+    rows = estimate_rows([("crude", view.data["crude"]), ("MH risk ratio", ratio)], 95,
+                         binary=True)
+    assert rows[0]["ci"] == "1.26 to 10.43" and rows[1]["ci"] == "0.80 to 1.20"
+    assert rows[1]["estimate"] == "0.98" and rows[0]["estimate"] == "5.85"
+
+
+def test_risk_difference_axes_read_in_percentage_points():
+    view = _binary(handmade())
+    fig = finish(plot_stratum_effects(view), freeze=False)
+    ax = fig.axes[0]
+    assert "percentage points" in ax.get_xlabel()
+    ticks = {t.get_position()[0]: t.get_text() for t in ax.get_xticklabels()}
+    assert any(abs(x + 0.05) < 1e-12 and text == "-5" for x, text in ticks.items())
+    fig = plot_p_value_function(view)  # the Wald curve of a risk-difference headline
+    labels = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert "95% CI -4.20 pp to 3.28 pp" in labels and "estimate -0.460 pp" in labels
+    fig = finish(plot_cross_checks(view), freeze=False)
+    assert "percentage points" in fig.axes[0].get_xlabel()

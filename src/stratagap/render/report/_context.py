@@ -127,6 +127,7 @@ def build_context(view, figures: dict, *, compact: bool) -> dict:
         "spec_toml": spec_toml(data), "command": run.get("command") or source.get("command"),
         "seed": data["spec"]["seed"], "run": run,
         "versions": (run.get("versions") or {}), "fmt": _f,
+        "count": lambda n: "n/a" if n is None else f"{int(n):,}",  # 1,629 as in the flow
         "num": format_number,  # fixed decimals: the SMD and KS columns (0.000, not 0.000397)
         "terms_text": describe_terms(data, knots=True),
     }

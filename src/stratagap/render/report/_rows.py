@@ -44,14 +44,19 @@ def estimate_rows(entries, level: int, *, binary: bool) -> list[dict]:
     scales = [100.0 if is_risk_difference(est.get("measure"), binary) else 1.0
               for _label, est in entries]
 
+    # a ratio needs two decimals (0.98, 1.20) even beside a risk difference of 10.4 pp
+    least = 2 if any("ratio" in str(est.get("measure", "")) or est.get("measure") in ("rr", "or")
+                     for _l, est in entries) else 0
+
     def column(key):
         return format_column([est.get(key) if est.get(key) is None else est[key] * k
-                              for (_l, est), k in zip(entries, scales)])
+                              for (_l, est), k in zip(entries, scales)], min_decimals=least)
 
     values, ses = column("estimate"), column("se")
     bounds = format_column([v for (_l, est), k in zip(entries, scales)
                             for v in (None if est.get("ci_low") is None else est["ci_low"] * k,
-                                      None if est.get("ci_high") is None else est["ci_high"] * k)])
+                                      None if est.get("ci_high") is None else est["ci_high"] * k)],
+                           min_decimals=least)
     rows = []
     for i, ((label, est), k) in enumerate(zip(entries, scales)):
         lo, hi = est.get("ci_low"), est.get("ci_high")
@@ -89,7 +94,8 @@ def strata_rows(data: dict) -> list[dict]:
 def strata_effect_label(data: dict) -> str:
     """What the strata table's effect column holds."""
     binary = (data.get("question") or {}).get("outcome_type") == "binary"
-    return PP_LABEL if binary else (data.get("adjusted") or {}).get("measure", "")
+    return ("risk difference in percentage points" if binary
+            else (data.get("adjusted") or {}).get("measure", ""))
 
 
 def benchmark_rows(tipping: dict, *, binary: bool) -> list[dict]:

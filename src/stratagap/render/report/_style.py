@@ -25,7 +25,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
 __all__ = ["PALETTE", "EXPOSED", "REFERENCE", "ACCENT", "ALERT", "NEUTRAL", "INK",
-           "new_figure", "finish", "figure_bytes", "plain", "ResultView", "view_of", "style"]
+           "new_figure", "finish", "percentage_points", "figure_bytes", "plain", "ResultView", "view_of", "style"]
 
 #: Tol (2021) "vibrant" scheme.
 PALETTE = {"blue": "#0077BB", "cyan": "#33BBEE", "teal": "#009988", "orange": "#EE7733",
@@ -110,6 +110,13 @@ def finish(fig: Figure, *, freeze: bool = True) -> Figure:
         if freeze:
             fig.set_layout_engine("none")
     return fig
+
+
+def percentage_points(axis) -> None:
+    """Tick labels of a risk-difference axis in percentage points (the data stay proportions,
+    as in the result): 0.05 reads "5", as in the report's tables."""
+    from matplotlib.ticker import FuncFormatter
+    axis.set_major_formatter(FuncFormatter(lambda v, _p: f"{100 * v:.10g}"))
 
 
 def figure_bytes(fig: Figure, fmt: str, dpi: int = 150) -> bytes:

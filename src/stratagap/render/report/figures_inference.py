@@ -18,7 +18,8 @@ from matplotlib.patches import Polygon
 from scipy import stats
 
 from ..formatting import format_p, format_sig
-from ._style import ACCENT, ALERT, INK, MUTED, NEUTRAL, PALETTE, REFERENCE, new_figure, plain, view_of
+from ._style import (ACCENT, ALERT, INK, MUTED, NEUTRAL, PALETTE, REFERENCE, new_figure,
+                     percentage_points, plain, view_of)
 
 __all__ = ["plot_null_distribution", "plot_stratum_effects", "plot_cross_checks",
            "plot_p_value_function", "null_value"]
@@ -170,7 +171,11 @@ def plot_stratum_effects(result) -> Figure:
     ax.set_yticklabels(labels + (["pooled (headline)"] if pooled else []), fontsize=8)
     ax.set_ylim(0.1 if pooled else 1.4, n + 1.7)
     ax.grid(axis="y", visible=False)
-    ax.set_xlabel(f"{per_measure}   (counts: exposed / reference)")
+    if per_measure == "risk difference":
+        percentage_points(ax.xaxis)
+        ax.set_xlabel("risk difference, percentage points   (counts: exposed / reference)")
+    else:
+        ax.set_xlabel(f"{per_measure}   (counts: exposed / reference)")
     return fig
 
 
@@ -199,6 +204,9 @@ def _many_strata_effects(per, adj, per_measure, level, same, noun="strata") -> F
         ax.axvline(pooled, color=ACCENT, linewidth=1.8, label=f"pooled {format_sig(pooled)}")
     ax.axvline(null_value(per_measure), color=INK, linewidth=0.9)
     ax.set_xlabel(per_measure)
+    if per_measure == "risk difference":
+        percentage_points(ax.xaxis)
+        ax.set_xlabel("risk difference, percentage points")
     ax.set_ylabel("share of the weight")
     ax.legend(loc="upper right", fontsize=7.5)
     return fig
@@ -269,7 +277,11 @@ def plot_cross_checks(result) -> Figure:
             ax.set_xscale("log")
             _plain_log_ticks(ax)
         ax.grid(axis="y", visible=False)
-        ax.set_xlabel(f"{scale}" + ("\n(band: headline CI)" if headline_here else ""))
+        pp = not kind and (v.data.get("question") or {}).get("outcome_type") == "binary"
+        if pp:  # a risk difference: percentage points, as in the tables
+            percentage_points(ax.xaxis)
+        ax.set_xlabel(("risk difference, percentage points" if pp else f"{scale}")
+                      + ("\n(band: headline CI)" if headline_here else ""))
     axes[0].set_yticks(ys)
     axes[0].set_yticklabels([name for name, _r, _c in rows], fontsize=8)
     axes[0].set_ylim(0.4, len(rows) + 0.6)
@@ -332,14 +344,21 @@ def plot_p_value_function(result) -> Figure:
             ax.set_xscale("log")
             _plain_log_ticks(ax)
         xlabel = f"hypothesized effect τ0 ({measure})"
+    pp = measure == "risk difference"
+    if pp:  # percentage points, as in the tables
+        percentage_points(ax.xaxis)
+        xlabel = xlabel.replace("(risk difference)", "(risk difference, percentage points)")
+
+    def show(x):
+        return f"{format_sig(100 * x)} pp" if pp else format_sig(x)
     ax.axhline(alpha, color=ALERT, linestyle=(0, (4, 2)), linewidth=1.1, label=f"α = {alpha:g}")
     if lo is not None and hi is not None:
         level = int(round(100 * (1 - alpha)))
         ax.hlines(alpha, lo, hi, color=ACCENT, linewidth=5, alpha=0.8,
-                  label=f"{level}% CI {format_sig(lo)} to {format_sig(hi)}")
+                  label=f"{level}% CI {show(lo)} to {show(hi)}")
     if est is not None:
         ax.axvline(est, color=INK, linewidth=1.0, linestyle=(0, (1, 1.5)),
-                   label=f"estimate {format_sig(est)}")
+                   label=f"estimate {show(est)}")
     nv = null_value(measure)
     if ax.get_xlim()[0] <= nv <= ax.get_xlim()[1]:
         ax.axvline(nv, color=MUTED, linewidth=0.8)
