@@ -77,7 +77,7 @@ def test_empty_result_gives_empty_frames():
 
 def test_one_strata_join_behind_the_csv_the_table_and_the_report():
     from stratagap.render.files import strata_csv
-    from stratagap.render.report._context import _strata_rows
+    from stratagap.render.report._rows import strata_rows
     from stratagap.render.tables import strata_with_estimates
     data = handmade().data
     data["adjusted"] = dict(data["adjusted"], per_stratum=data["adjusted"]["per_stratum"][:1])
@@ -88,8 +88,9 @@ def test_one_strata_join_behind_the_csv_the_table_and_the_report():
     assert rows[1] == data["strata"][1]
     csv_lines = strata_csv(data).splitlines()
     assert csv_lines[0] == ",".join(STRATA_COLUMNS) and csv_lines[2].endswith(",,,,,")
-    report = _strata_rows(data)
+    report = strata_rows(data)
     assert report[0]["ci"] == "-0.46 to 3.46" and report[1]["ci"] == "n/a"
+    assert [r["stratum"] for r in report] == [0, 1]  # numbered as in results.json and strata.csv
     assert report[1]["estimate"] == "n/a" and report[1]["model"] == ""
 
 

@@ -32,6 +32,8 @@ def _inputs(*, measure="mean difference", excludes=True, rejects=True, balanced=
     est, lo, hi = ((1.84, 1.31, 2.58) if ratio else (3.56, 2.72, 4.41)) if excludes else (
         (1.06, 0.89, 1.28) if ratio else (0.42, -0.31, 1.15))
     assert (not lo <= null <= hi) == excludes
+    if measure == "risk difference":  # proportions: the verdict writes them x 100, in pp
+        est, lo, hi = est / 100, lo / 100, hi / 100
     gamma = {"ok": 1.88, "not significant at Gamma=1": 1.0, "> cap": 1000.0}[gamma_flag]
     return dict(
         spec=NS(alpha=alpha, estimand="ate", alternative="two-sided"),
@@ -58,7 +60,8 @@ def _numbers(text):
 
 def _adjusted(text):
     m = re.search(r"Adjusted (.+?) \((.+?), regression within propensity-score strata\): "
-                  r"(\S+) \((\d+)% CI (\S+) to (\S+)\), which (excludes|includes) the null value "
+                  r"(\S+)(?: pp)? \((\d+)% CI (\S+) to (\S+?)(?: pp)?\), which "
+                  r"(excludes|includes) the null value "
                   r"(\S+)\.", text)
     assert m, text
     return m.groups()
@@ -97,7 +100,8 @@ def test_in_short_sentence_follows_ci_test_and_balance(measure, excludes, reject
     name, population, est, level, lo, hi, word, null = _adjusted(text)
     adj = kw["adjusted"]
     assert name == measure and population == "ATE" and level == "95"
-    assert (est, lo, hi) == tuple(f"{adj[k]:.2f}" for k in ("estimate", "ci_low", "ci_high"))
+    k = 100 if measure == "risk difference" else 1  # a risk difference in percentage points
+    assert (est, lo, hi) == tuple(f"{k * adj[c]:.2f}" for c in ("estimate", "ci_low", "ci_high"))
     ratio = measure in ("risk ratio", "odds ratio")
     assert null == ("1" if ratio else "0")
     assert word == ("excludes" if excludes else "includes")
@@ -131,8 +135,12 @@ def test_difference_verdict_quotes_the_crude_difference_under_its_own_name(measu
     kw = _inputs(measure=measure)
     text = write_verdict(**kw)
     crude = kw["crude"]
-    assert text.startswith(f"Crude {crude['measure']}: {crude['estimate']:.2f} (95% CI "
-                           f"{crude['ci_low']:.2f} to {crude['ci_high']:.2f}).")
+    if crude["measure"] == "risk difference":  # issue 10: percentage points, not "0.06"
+        assert text.startswith(f"Crude risk difference: {100 * crude['estimate']:.2f} pp (95% CI "
+                               f"{100 * crude['ci_low']:.2f} to {100 * crude['ci_high']:.2f} pp).")
+    else:
+        assert text.startswith(f"Crude {crude['measure']}: {crude['estimate']:.2f} (95% CI "
+                               f"{crude['ci_low']:.2f} to {crude['ci_high']:.2f}).")
 
 
 def _row(method, est, lo, hi, measure):
@@ -175,8 +183,8 @@ def test_ratio_verdict_with_mixed_scales_counts_only_its_own():
 def test_difference_verdict_counts_cross_checks_against_zero():
     text = write_verdict(**_inputs(measure="risk difference", cross=DIFFERENCE_ROWS))
     # only the standardization CI (0.012 to 0.11) excludes 0
-    assert ("Cross-check estimators (risk difference) range from -0.00 to 0.06; 1 of 3 have a "
-            "CI excluding the null value 0.") in text
+    assert ("Cross-check estimators (risk difference) range from -0.40 pp to 6.10 pp; 1 of 3 "
+            "have a CI excluding the null value 0.") in text
     assert "difference scale" not in text
 
 
@@ -230,9 +238,9 @@ def test_every_number_quoted_comes_from_the_inputs():
                              alarm=False))
     text = write_verdict(**kw)
     allowed = {"0", "0.1", "95", "0.05", "1.88", "0.025", "1.93", "1.75", "0.0002", "0.047",
-               "0.06", "0.01", "-0.00", "1", "3", "0.383", "0.15", "0.1"}
-    allowed |= {f"{kw['crude'][k]:.2f}" for k in ("estimate", "ci_low", "ci_high")}
-    allowed |= {f"{kw['adjusted'][k]:.2f}" for k in ("estimate", "ci_low", "ci_high")}
+               "6.10", "-0.40", "1", "3", "0.383", "0.15", "0.1"}  # cross-checks in pp
+    allowed |= {f"{100 * kw['crude'][k]:.2f}" for k in ("estimate", "ci_low", "ci_high")}
+    allowed |= {f"{100 * kw['adjusted'][k]:.2f}" for k in ("estimate", "ci_low", "ci_high")}
     assert _numbers(text) <= allowed, _numbers(text) - allowed
 
 

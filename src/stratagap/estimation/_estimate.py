@@ -47,6 +47,16 @@ class Estimate:
 
 
 @dataclass(frozen=True)
+class CrudeEstimate(Estimate):
+    """The crude comparison of a binary outcome: an :class:`Estimate` plus each group's risk
+    (the share with the event among the exposed and among the reference rows), so a report
+    can show the two risks beside their difference or ratio."""
+
+    risk_exposed: float | None = None
+    risk_reference: float | None = None
+
+
+@dataclass(frozen=True)
 class StratifiedEstimate(Estimate):
     """The headline: an :class:`Estimate` plus the per-stratum table and the model choices.
 

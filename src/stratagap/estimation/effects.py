@@ -34,7 +34,7 @@ from scipy import stats
 
 from . import _within_strata as _lin
 from ..errors import InputError, ModelWarning
-from ._estimate import (MATCHED_SET_MAX, Estimate, StratifiedEstimate, _between_set_variance,
+from ._estimate import (MATCHED_SET_MAX, CrudeEstimate, Estimate, StratifiedEstimate, _between_set_variance,
                         _check_alpha, _check_estimand, _check_labels, _check_X, _check_yt,
                         _layout, _matched_sets, _outcome_kind, _strata)
 from ._inversion import ConstantEffect, constant_effect
@@ -75,7 +75,8 @@ def crude(y, t, outcome_type, *, alpha=0.05, measure="difference") -> Estimate:
     -------
     Estimate
         Continuous: difference of means with the Welch SE and the Welch-Satterthwaite t
-        interval (Welch 1947). Binary: risk difference with the Wald SE
+        interval (Welch 1947). Binary (a ``CrudeEstimate``, which adds each group's risk
+        ``risk_exposed``, ``risk_reference``): risk difference with the Wald SE
         ``sqrt(p1 q1 / n1 + p0 q0 / n0)`` and a normal interval; risk ratio with the log-scale
         SE ``sqrt(q1 / (n1 p1) + q0 / (n0 p0))`` (Katz et al. 1978); odds ratio with Woolf's
         log-scale SE ``sqrt(1/a + 1/b + 1/c + 1/d)`` (Woolf 1955).
@@ -111,7 +112,12 @@ def crude(y, t, outcome_type, *, alpha=0.05, measure="difference") -> Estimate:
         p1, p0 = y1.mean(), y0.mean()
         se = math.sqrt(p1 * (1 - p1) / n1 + p0 * (1 - p0) / n0)  # Wald
         lo, hi = _normal_ci(est, se, alpha)
-        measure, method = "risk difference", "Wald interval"
+        return CrudeEstimate(float(est), float(se), float(lo), float(hi), "risk difference",
+                             "crude (unadjusted)",
+                             f"all complete-case rows before trimming (n = {n1 + n0})",
+                             "crude (unadjusted), all complete-case rows before trimming; "
+                             "Wald interval", alpha, risk_exposed=float(p1),
+                             risk_reference=float(p0))
     return Estimate(float(est), float(se), float(lo), float(hi), measure,
                     "crude (unadjusted)", f"all complete-case rows before trimming (n = {n1 + n0})",
                     f"crude (unadjusted), all complete-case rows before trimming; {method}",
@@ -137,9 +143,10 @@ def _crude_ratio(y1, y0, measure, alpha) -> Estimate:
     z = float(stats.norm.ppf(1 - alpha / 2))
     lo, hi = (math.exp(math.log(est) - z * se), math.exp(math.log(est) + z * se)) if ok \
         else (math.nan, math.nan)
-    return Estimate(float(est), float(se), float(lo), float(hi), name, "crude (unadjusted)",
-                    population, f"crude (unadjusted), all complete-case rows before trimming; {method}",
-                    alpha, scale="log")
+    return CrudeEstimate(float(est), float(se), float(lo), float(hi), name, "crude (unadjusted)",
+                         population,
+                         f"crude (unadjusted), all complete-case rows before trimming; {method}",
+                         alpha, scale="log", risk_exposed=a / n1, risk_reference=c / n0)
 
 
 # --------------------------------------------------------------------------- headline

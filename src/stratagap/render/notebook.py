@@ -9,6 +9,7 @@ from __future__ import annotations
 import base64
 import html
 
+from .formatting import format_sig
 
 __all__ = ["notebook_html", "figures"]
 
@@ -19,7 +20,7 @@ SHOWN = ("balance", "gamma_curve")
 def figures(result, names=None) -> dict:
     """Matplotlib Figures of the report by name (every one, or those in ``names``)."""
     from .report.html import FIGURES
-    from .report._style import view_of
+    from .report._style import finish, view_of
 
     view = view_of(result)
     wanted = [n for n, _f, _c in FIGURES] if names is None else list(names)
@@ -28,7 +29,7 @@ def figures(result, names=None) -> dict:
     if unknown:
         from ..errors import InputError
         raise InputError(f"`names` holds unknown figures {unknown}; choose from {list(known)}")
-    return {n: known[n](view) for n in wanted}
+    return {n: finish(known[n](view), freeze=False) for n in wanted}
 
 
 def _svg(fig) -> str:
@@ -47,7 +48,7 @@ def notebook_html(result) -> str:
             ("Crude", data["crude"])] + [(r["method"], r) for r in data["cross_checks"]]
     table = pd.DataFrame([{"estimate": name, "value": r.get("estimate"), "CI low": r.get("ci_low"),
                            "CI high": r.get("ci_high")} for name, r in rows]).to_html(
-        index=False, float_format=lambda v: f"{v:.3g}", border=0)
+        index=False, float_format=format_sig, border=0)
     pictures = "".join(_svg(f) for f in figures(result, SHOWN).values())
     cautions = "".join(f"<li>{html.escape(c)}</li>" for c in data["cautions"])
     return (f'<div class="stratagap-result"><p><b>stratagap</b>: {html.escape(data["verdict"])}</p>'

@@ -4,9 +4,10 @@ from __future__ import annotations
 
 import textwrap
 
-from .formatting import describe_terms, format_number as _n, format_p as _p
+from .formatting import (describe_terms, format_number as _n, format_p as _p, format_risk,
+                         is_risk_difference)
 from .rates_text import summary_lines as _rate_lines
-from .verdict import NOT_SIGNIFICANT, measure_code
+from .verdict import NOT_SIGNIFICANT, measure_code, not_significant_phrase
 
 __all__ = ["render_summary"]
 
@@ -18,6 +19,7 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
     q, flow, test, adj, crude = (data["question"], data["flow"], data["test"], data["adjusted"],
                                  data["crude"])
     level = int(round(100 * (1 - data["spec"]["alpha"])))
+    binary = q["outcome_type"] == "binary"
     lines = [
         f"stratagap: {q['outcome']} by {q['exposure']} "
         f"({q['exposed_value']} vs {q['reference_value']}), {q['outcome_type']} outcome",
@@ -29,10 +31,8 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
                        subsequent_indent="    "),
         f"  strata: {len(data['strata'])}; max |SMD| before {_n(data['balance']['max_abs_smd_before'], 3)}"
         f", after {_n(data['balance']['max_abs_smd_after'], 3)}",
-        f"  crude {crude['measure']}: {_n(crude['estimate'])} "
-        f"({level}% CI {_n(crude['ci_low'])} to {_n(crude['ci_high'])})",
-        f"  adjusted {adj['measure']}: {_n(adj['estimate'])} "
-        f"({level}% CI {_n(adj['ci_low'])} to {_n(adj['ci_high'])})",
+        f"  crude {crude['measure']}: {_effect(crude, binary, f'{level}% CI ')}",
+        f"  adjusted {adj['measure']}: {_effect(adj, binary, f'{level}% CI ')}",
     ]
     lines.extend(_rate_lines(data))  # rate outcomes: per 1,000, rate ratio, events/person-time
     if data.get("matching"):
@@ -52,7 +52,7 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
     ev = sens["e_value"] or {}  # None when the E-value is undefined
     detail = sens.get("gamma_threshold_detail") or {}
     if detail.get("flag") == NOT_SIGNIFICANT:
-        gamma = "not significant without hidden bias (Γ = 1)"
+        gamma = not_significant_phrase()
     else:
         gamma = f"Γ threshold {_n(sens['gamma_threshold'])}"
     lines.append(f"  sensitivity: {gamma}; "
@@ -62,8 +62,7 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
         # a cross-check on another scale than the headline's says which (issue 10, item 1)
         scale = "" if row.get("measure", "difference") == headline else (
             f" [{_SCALES.get(row.get('measure'), row.get('measure'))}]")
-        lines.append(f"  cross-check {row['method']}{scale}: {_n(row['estimate'])} "
-                     f"({_n(row['ci_low'])} to {_n(row['ci_high'])})")
+        lines.append(f"  cross-check {row['method']}{scale}: {_effect(row, binary)}")
     if data["warnings"]:
         lines.append(f"  warnings ({len(data['warnings'])}):")
         for w in data["warnings"]:
@@ -75,6 +74,21 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
     for c in data["cautions"]:
         lines.extend(textwrap.wrap(c, width, initial_indent="! ", subsequent_indent="  "))
     return "\n".join(lines) + "\n"
+
+
+def _effect(est: dict, binary: bool, ci: str = "") -> str:
+    """"3.54 (95% CI 2.57 to 4.51)"; a risk difference in percentage points with the two
+    groups' risks where the estimate carries them: "-0.46 pp (95% CI -4.20 to 3.28);
+    risks 19.2 % vs 19.6 %" (issue 10: no "-0.00" for a risk difference)."""
+    if not is_risk_difference(est.get("measure"), binary):
+        return f"{_n(est['estimate'])} ({ci}{_n(est['ci_low'])} to {_n(est['ci_high'])})"
+    pp = [None if est.get(k) is None else 100 * est[k] for k in ("estimate", "ci_low", "ci_high")]
+    text = f"{_n(pp[0])} pp ({ci}{_n(pp[1])} to {_n(pp[2])})"
+    p1 = est.get("risk_exposed", est.get("mu1"))
+    p0 = est.get("risk_reference", est.get("mu0"))
+    if p1 is not None and p0 is not None:
+        text += f"; risks {format_risk(p1)} vs {format_risk(p0)}"
+    return text
 
 
 def _cluster_lines(block: dict | None, width: int) -> list[str]:

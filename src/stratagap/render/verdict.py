@@ -11,7 +11,8 @@ odds ratio, null 1) the crude comparison is quoted only when it is on the same s
 cross-check on the difference scale is named as such and not compared with the ratio null (the
 pipeline computes both on the headline's measure).
 When the test is not significant without hidden bias (Gamma = 1), the paragraph says so
-instead of quoting a sensitivity threshold.
+instead of quoting a sensitivity threshold. A risk difference is written in percentage points
+("-0.46 pp", not "-0.00"), as in the summary and the report.
 """
 
 from __future__ import annotations
@@ -19,7 +20,8 @@ from __future__ import annotations
 from .formatting import format_number as _fmt, format_p_relation as _fmt_p
 from .rates_text import verdict_sentences as _rate_sentences
 
-__all__ = ["write_verdict", "RATIO_MEASURES", "measure_code"]
+__all__ = ["write_verdict", "gamma_sentence", "not_significant_phrase", "RATIO_MEASURES",
+           "measure_code"]
 
 #: Headline measure names on the ratio scale (null 1); every other measure is a difference.
 RATIO_MEASURES = ("risk ratio", "odds ratio")
@@ -27,6 +29,14 @@ RATIO_MEASURES = ("risk ratio", "odds ratio")
 _CODES = {"risk ratio": "rr", "odds ratio": "or"}
 #: The sensitivity value's flag when the one-sided test does not reject at Gamma = 1.
 NOT_SIGNIFICANT = "not significant at Gamma=1"
+#: The headline measure written in percentage points.
+RISK_DIFFERENCE = "risk difference"
+
+
+def not_significant_phrase() -> str:
+    """The short words for a one-sided test that does not reject at Gamma = 1 (no threshold
+    number: there is none); the summary and the Gamma figure say it so."""
+    return "not significant without hidden bias (Γ = 1)"
 
 
 def _get(obj, name, default=None):
@@ -42,7 +52,17 @@ def measure_code(measure: str) -> str:
     return _CODES.get(measure, "difference")
 
 
-def _ci(level, lo, hi):
+def _value(x, pp=False):
+    """A number of the paragraph; a risk difference in percentage points ("-0.46 pp", where
+    two decimals of the proportion would read "-0.00")."""
+    if not pp or x is None:
+        return _fmt(x)
+    return f"{_fmt(100 * x)} pp"
+
+
+def _ci(level, lo, hi, pp=False):
+    if pp and lo is not None and hi is not None:
+        return f"{level}% CI {_fmt(100 * lo)} to {_fmt(100 * hi)} pp"
     return f"{level}% CI {_fmt(lo)} to {_fmt(hi)}"
 
 
@@ -63,22 +83,27 @@ def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_c
     balanced = max_smd is not None and max_smd <= 0.1 and not higher_flag
     level = int(round(100 * (1 - spec.alpha)))
     population = _get(overlap, "estimand_label", spec.estimand.upper())
+    matched = getattr(spec, "design", "strata") == "match"
+    within = "within matched sets" if matched else "within propensity-score strata"
 
     parts = []
     if not ratio or _get(crude, "measure") == measure:  # quoted only on the headline's scale
-        parts.append(f"Crude {_get(crude, 'measure', measure)}: {_fmt(_get(crude, 'estimate'))} "
-                     f"({_ci(level, _get(crude, 'ci_low'), _get(crude, 'ci_high'))}).")
+        crude_pp = _get(crude, "measure", measure) == RISK_DIFFERENCE
+        parts.append(f"Crude {_get(crude, 'measure', measure)}: "
+                     f"{_value(_get(crude, 'estimate'), crude_pp)} "
+                     f"({_ci(level, _get(crude, 'ci_low'), _get(crude, 'ci_high'), crude_pp)}).")
+    pp = measure == RISK_DIFFERENCE
     rate_how, rate_more = _rate_sentences(spec, adjusted)  # rate outcomes: unit, per 1,000
     parts.append(
-        f"Adjusted {measure} ({population}, "
-        f"{rate_how or 'regression within propensity-score strata'}): "
-        f"{_fmt(_get(adjusted, 'estimate'))} ({_ci(level, lo, hi)}), which "
+        f"Adjusted {measure} ({population}, {rate_how or 'regression ' + within}): "
+        f"{_value(_get(adjusted, 'estimate'), pp)} ({_ci(level, lo, hi, pp)}), which "
         f"{'excludes' if excludes else 'includes'} the null value {null:g}.")
     parts.extend(rate_more)
     parts.append(f"The stratified permutation test of the sharp null (no effect for anyone) "
                  f"gives p {_fmt_p(p)} ({_get(main, 'alternative', spec.alternative)}).")
     if max_smd is not None:
-        parts.append(f"After stratification the largest absolute standardized mean difference is "
+        parts.append(f"After {'matching' if matched else 'stratification'} the largest absolute "
+                     f"standardized mean difference is "
                      f"{_fmt(max_smd, 3)} ({'within' if max_smd <= 0.1 else 'above'} the 0.1 threshold, "
                      f"common practice).")
     if higher_flag:
@@ -89,7 +114,7 @@ def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_c
                      f"{_fmt(_get(higher, 'permutation_p95'), 3)} at their 95th percentile): the strata "
                      f"alone do not balance them, and the result leans on the regression within "
                      f"strata, whose spline terms cover squares but not products of covariates.")
-    parts.append(_gamma_sentence(sensitivity))
+    parts.append(gamma_sentence(sensitivity))
     e_point = _get(sensitivity.e_value, "point")
     if e_point is not None:
         parts.append(f"E-value: {_fmt(e_point)} for the estimate and "
@@ -111,11 +136,14 @@ def write_verdict(*, spec, crude, adjusted, tests, balance, sensitivity, cross_c
     return " ".join(parts)
 
 
-def _gamma_sentence(sensitivity) -> str:
+def gamma_sentence(sensitivity) -> str:
+    """The sensitivity value in one sentence, from the result's sensitivity block (object or
+    dict): the threshold Gamma, or, when the one-sided test is not significant without hidden
+    bias, that fact and no threshold. The verdict and the report's sensitivity section."""
     detail = _get(sensitivity, "gamma_threshold_detail")
     flag = _get(detail, "flag", "ok")
-    gamma = sensitivity.gamma_threshold
-    level = _fmt(sensitivity.gamma_level, 3)
+    gamma = _get(sensitivity, "gamma_threshold")
+    level = _fmt(_get(sensitivity, "gamma_level"), 3)
     if flag == NOT_SIGNIFICANT or gamma is None:
         return (f"Without hidden bias (Γ = 1) the one-sided test is not significant at {level}, "
                 f"so there is no sensitivity threshold to report.")
@@ -140,8 +168,9 @@ def _cross_check_sentence(cross_checks, measure, null) -> str | None:
         excluding = sum(1 for r in same if _get(r, "ci_low") is not None
                         and _get(r, "ci_high") is not None
                         and not (_get(r, "ci_low") <= null <= _get(r, "ci_high")))
-        text.append(f"Cross-check estimators ({measure}) range from {_fmt(min(ests))} to "
-                    f"{_fmt(max(ests))}; {excluding} of {len(same)} have a CI excluding the null "
+        pp = measure == RISK_DIFFERENCE
+        text.append(f"Cross-check estimators ({measure}) range from {_value(min(ests), pp)} to "
+                    f"{_value(max(ests), pp)}; {excluding} of {len(same)} have a CI excluding the null "
                     f"value {null:g}.")
     differ = [r for r in same if _get(r, "differs_from_headline")]
     if differ:

@@ -10,24 +10,17 @@ from __future__ import annotations
 import json
 import math
 
-from ..formatting import describe_terms, format_value as _f
-from ..tables import strata_with_estimates
-from .baseline import BASELINE_COLUMNS, analysed_raw, baseline_table, header as baseline_header
 from ..rates_text import effect_blocks as rate_effect_blocks, flow_detail as rate_flow_detail
+from ..formatting import describe_terms, format_number, format_value as _f
+from ..verdict import NOT_SIGNIFICANT, gamma_sentence
+from ._matching import matching_context
+from ._rows import benchmark_rows, estimate_rows, strata_effect_label, strata_rows
+from .baseline import (BASELINE_COLUMNS, analysed_raw, baseline_table,
+                       header as baseline_header, trimming_note)
+from .figures_design import balance_label
 from .flow import flow_steps
 
 __all__ = ["build_context", "spec_toml"]
-
-
-def _estimate_row(label, est, level):
-    if not est:
-        return None
-    lo, hi = est.get("ci_low"), est.get("ci_high")
-    return {"label": label, "estimate": _f(est.get("estimate")), "se": _f(est.get("se"), 3),
-            "ci": f"{_f(lo)} to {_f(hi)}" if lo is not None or hi is not None else "n/a",
-            "measure": est.get("measure", ""), "estimand": est.get("estimand", ""),
-            "population": est.get("population", ""), "method": est.get("method", ""),
-            "level": level}
 
 
 def spec_toml(data: dict) -> str:
@@ -42,20 +35,6 @@ def spec_toml(data: dict) -> str:
             continue
         lines.append(f"{key.replace('_', '-')} = {json.dumps(value, ensure_ascii=False)}")
     return "\n".join(lines) + "\n"
-
-
-def _strata_rows(data):
-    out = []
-    for row in strata_with_estimates(data):
-        joined = "ci_low" in row  # the stratum has a per-stratum estimate row
-        out.append({"stratum": int(row["stratum"]) + 1,
-                    "range": f"{_f(row['score_low'], 3)} to {_f(row['score_high'], 3)}",
-                    "n_exposed": row["n_exposed"], "n_reference": row["n_reference"],
-                    "n": row["n"], "weight": _f(row["weight"], 3),
-                    "estimate": _f(row.get("estimate")),
-                    "ci": f"{_f(row['ci_low'])} to {_f(row['ci_high'])}" if joined else "n/a",
-                    "model": row.get("model", "")})
-    return out
 
 
 def _test_rows(test):
@@ -77,31 +56,48 @@ def _flow_steps(data):
     return steps
 
 
+def estimand_text(q: dict) -> str:
+    """"ATE", or "ATT; population: ..." when the population label says more than the
+    estimand (said once when the two are the same)."""
+    estimand, population = q.get("estimand", ""), q.get("population", "")
+    if not population or population == estimand:
+        return estimand
+    return f"{estimand}; population: {population}"
+
+
+def before_label(data: dict) -> str:
+    """The balance table's "before" column: "SMD before" is on the rows kept by the overlap
+    rule, so it says "(after trimming)" when trimming set units aside (the baseline table's
+    crude column says the same)."""
+    before = "SMD before matching" if data.get("matching") else "SMD before"
+    return before + trimming_note(data)
+
+
 def build_context(view, figures: dict, *, compact: bool) -> dict:
     data = view.data
     q = data["question"]
     adj = data["adjusted"]
     alpha = float(data["spec"]["alpha"])
     level = int(round(100 * (1 - alpha)))
-    effects = [_estimate_row("crude (unadjusted)", data["crude"], level),
-               _estimate_row("adjusted (headline)", adj, level),
-               _estimate_row("plain stratified difference", adj.get("plain_stratified"), level),
-               _estimate_row("constant effect by test inversion", adj.get("constant_effect"), level),
-               _estimate_row("standardized risk ratio", adj.get("standardized_risk_ratio"), level)]
-    effects += [_estimate_row(label, est, level) for label, est in rate_effect_blocks(data)]
+    binary = q.get("outcome_type") == "binary"
+    entries = [("crude (unadjusted)", data["crude"]), ("adjusted (headline)", adj),
+               ("plain stratified difference", adj.get("plain_stratified")),
+               ("constant effect by test inversion", adj.get("constant_effect")),
+               ("standardized risk ratio", adj.get("standardized_risk_ratio"))]
     for key, est in (adj.get("mantel_haenszel") or {}).items():
         if isinstance(est, dict):
-            effects.append(_estimate_row(f"Mantel-Haenszel {key.replace('_', ' ')}", est, level))
-    cross = [_estimate_row(r.get("method", ""), r, level) | {"kind": r.get("estimand_kind", ""),
-                                                             "se_method": r.get("se_method", "")}
-             for r in data["cross_checks"]]
+            entries.append((f"Mantel-Haenszel {key.replace('_', ' ')}", est))
+    entries += list(rate_effect_blocks(data))  # rate outcomes: per 1,000, crude rate ratio
+    effects = estimate_rows(entries, level, binary=binary)
+    checks = data["cross_checks"]
+    cross = [row | {"kind": r.get("estimand_kind", ""), "se_method": r.get("se_method", "")}
+             for row, r in zip(estimate_rows([(r.get("method", ""), r) for r in checks], level,
+                                             binary=binary), checks)]
     sens = data["sensitivity"]
     tip = sens["tipping"]
     raw = analysed_raw(view)
     base = baseline_table(view)
-    balance_rows = [{**r, "label": r.get("covariate", "") if r.get("level") in (None, "")
-                     else f"{r.get('covariate')}: {r.get('level')}"}
-                    for r in data["balance"]["rows"]]
+    balance_rows = [{**r, "label": balance_label(r)} for r in data["balance"]["rows"]]
     hetero = []
     for key, h in data["heterogeneity"].items():
         if isinstance(h, dict):
@@ -119,18 +115,27 @@ def build_context(view, figures: dict, *, compact: bool) -> dict:
         "baseline_header_text": baseline_header(data),
         "baseline_rows": [{k: (None if isinstance(v, float) and not math.isfinite(v) else v)
                            for k, v in row.items()} for row in base.to_dict("records")], "baseline_has_raw": raw is not None,
-        "strata_rows": _strata_rows(data), "strata_info": data["strata_info"],
+        "strata_rows": strata_rows(data), "strata_info": data["strata_info"],
+        "strata_effect_label": strata_effect_label(data),
         "test": data["test"], "test_rows": _test_rows(data["test"]),
-        "effects": [e for e in effects if e], "heterogeneity": hetero,
+        "effects": effects, "heterogeneity": hetero, "binary": binary,
         "adjusted": adj, "cross": cross, "weights": data.get("cross_check_weights"),
         "sens": sens, "e_value": sens.get("e_value") or {},
         "gamma": sens["gamma_threshold_detail"],
         "gamma_bounds": sens["gamma_bounds"], "tipping": tip,
-        "benchmarks": tip.get("benchmarks") or [],
+        "gamma_text": gamma_sentence(sens), "before_label": before_label(data),
+        "after_label": "SMD after matching" if data.get("matching") else "SMD after",
+        "gamma_significant": (sens["gamma_threshold_detail"] or {}).get("flag") != NOT_SIGNIFICANT
+        and sens.get("gamma_threshold") is not None,
+        "estimand_text": estimand_text(q), "matching": matching_context(data),
+        "benchmarks": benchmark_rows(tip, binary=binary),
+        "benchmark_pp": binary and tip.get("measure", "difference") == "difference",
         "negative": data["negative_control"], "verdict": data["verdict"],
         "cautions": data["cautions"], "figures": figures,
         "spec_toml": spec_toml(data), "command": run.get("command") or source.get("command"),
         "seed": data["spec"]["seed"], "run": run,
         "versions": (run.get("versions") or {}), "fmt": _f,
+        "count": lambda n: "n/a" if n is None else f"{int(n):,}",  # 1,629 as in the flow
+        "num": format_number,  # fixed decimals: the SMD and KS columns (0.000, not 0.000397)
         "terms_text": describe_terms(data, knots=True),
     }

@@ -25,7 +25,7 @@ from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
 __all__ = ["PALETTE", "EXPOSED", "REFERENCE", "ACCENT", "ALERT", "NEUTRAL", "INK",
-           "new_figure", "figure_bytes", "plain", "ResultView", "view_of", "style"]
+           "new_figure", "finish", "percentage_points", "figure_bytes", "plain", "ResultView", "view_of", "style"]
 
 #: Tol (2021) "vibrant" scheme.
 PALETTE = {"blue": "#0077BB", "cyan": "#33BBEE", "teal": "#009988", "orange": "#EE7733",
@@ -84,7 +84,39 @@ def new_figure(title: str, subtitle: str = "", *, size=(7.2, 4.2), nrows=1, ncol
         if subtitle:  # wrapped to the axes width (tick labels can take a third of 7.2 in)
             width = int(78 * size[0] / 7.2)
             axes[0, 0].set_title(textwrap.fill(subtitle, width), loc="left")
+            fig._subtitle = (axes[0, 0], subtitle, width)  # read by finish()
     return fig, (axes[0, 0] if nrows * ncols == 1 else axes)
+
+
+def finish(fig: Figure, *, freeze: bool = True) -> Figure:
+    """Lay a figure out once and freeze the layout, re-wrapping its subtitle when the axes
+    start so far right (long row labels) that a line would run past the figure's edge and be
+    clipped (issue 10: the cross-check figure's subtitle). The report calls this before saving
+    (``freeze``: each save would otherwise redo the layout); notebooks keep the layout live."""
+    with style():
+        fig.draw_without_rendering()
+        ax, subtitle, width = getattr(fig, "_subtitle", (None, "", 0))
+        for _ in range(4):
+            if ax is None:
+                break
+            renderer = fig.canvas.get_renderer()
+            right = fig.bbox.x1 - 4  # pixels
+            extent = ax._left_title.get_window_extent(renderer)  # the loc="left" title
+            if extent.x1 <= right or width <= 20:
+                break
+            width = max(20, int(width * (right - extent.x0) / extent.width) - 1)
+            ax.set_title(textwrap.fill(subtitle, width), loc="left")
+            fig.draw_without_rendering()
+        if freeze:
+            fig.set_layout_engine("none")
+    return fig
+
+
+def percentage_points(axis) -> None:
+    """Tick labels of a risk-difference axis in percentage points (the data stay proportions,
+    as in the result): 0.05 reads "5", as in the report's tables."""
+    from matplotlib.ticker import FuncFormatter
+    axis.set_major_formatter(FuncFormatter(lambda v, _p: f"{100 * v:.10g}"))
 
 
 def figure_bytes(fig: Figure, fmt: str, dpi: int = 150) -> bytes:

@@ -27,6 +27,7 @@ from ..rates_text import baseline_rows as rate_baseline_rows
 from ._style import view_of
 
 __all__ = ["baseline_table", "baseline_markdown", "baseline_latex", "header", "crude_label",
+           "trimming_note",
            "SKEW_RULE", "BASELINE_COLUMNS"]
 
 #: |skewness| above which a numeric covariate is summarized by median (Q1 to Q3) (common practice).
@@ -53,8 +54,12 @@ def _num(x, digits):
 
 
 def _digits(values) -> int:
-    scale = np.nanmedian(np.abs(values)) if len(values) else 0.0
-    return 1 if scale >= 10 else 2 if scale >= 1 else 3
+    """Decimals of a numeric covariate's summaries, from the typical size of its non-zero
+    values (earnings that are mostly 0 still read "2,200", not "2,199.909")."""
+    values = np.abs(np.asarray(values, dtype=float))
+    values = values[np.isfinite(values) & (values > 0)]
+    scale = float(np.median(values)) if values.size else 0.0
+    return 0 if scale >= 1000 else 1 if scale >= 10 else 2 if scale >= 1 else 3
 
 
 def _smd(rows, covariate, level=None):
@@ -158,11 +163,19 @@ def _smd_text(x) -> str:
     return "" if x is None or (isinstance(x, float) and not math.isfinite(x)) else f"{x:.3f}"
 
 
-def crude_label(data: dict) -> str:
-    """Header of the crude standardized difference: says so when trimming set units aside."""
+def trimming_note(data: dict) -> str:
+    """" (after trimming)" when the overlap rule set units aside, so every "before" figure
+    (on the rows the rule kept) says so; "" otherwise."""
     trimmed = (data.get("flow") or {}).get("trimmed_by_group") or {}
-    after_trimming = any(v for v in trimmed.values())
-    return "Std. difference, crude" + (" (after trimming)" if after_trimming else "")
+    return " (after trimming)" if any(v for v in trimmed.values()) else ""
+
+
+def crude_label(data: dict) -> str:
+    """Header of the crude standardized difference: says so when trimming set units aside,
+    and "before matching" for a matched design (every unit offered to the matching)."""
+    if data.get("matching"):  # the units offered to the matching, as the caption says
+        return "Std. difference, before matching"
+    return "Std. difference, crude" + trimming_note(data)
 
 
 def header(data: dict) -> list[str]:
@@ -170,7 +183,8 @@ def header(data: dict) -> list[str]:
     q = data.get("question") or {}
     return ["Characteristic", "Level", "Shown as", f"Exposed: {q.get('exposed_value', '')}",
             f"Reference: {q.get('reference_value', '')}", crude_label(data),
-            "Std. difference, within strata"]
+            "Std. difference, matched sample" if data.get("matching")
+            else "Std. difference, within strata"]
 
 
 def _cells(table: pd.DataFrame) -> list[list[str]]:

@@ -12,7 +12,7 @@ from matplotlib.figure import Figure
 
 from ._style import ACCENT, ALERT, EXPOSED, INK, MUTED, NEUTRAL, REFERENCE, new_figure, plain, view_of
 
-__all__ = ["plot_overlap", "plot_balance", "SMD_FLAG"]
+__all__ = ["plot_overlap", "plot_balance", "balance_label", "SMD_FLAG"]
 
 #: |SMD| above which a covariate is flagged as imbalanced (common practice).
 SMD_FLAG = 0.1
@@ -108,10 +108,15 @@ def _share_format(value, _position=None) -> str:
     return f"{abs(value):.0%}" if abs(value) >= 0.1 or value == 0 else f"{abs(value):.1%}"
 
 
-def _balance_label(row: dict) -> str:
+def balance_label(row: dict) -> str:
+    """A balance term as the run spells it everywhere: its design-column name ("role: nurse",
+    or a formula's own "C(role)[T.nurse]"), the name in results.json, the warnings and the
+    tipping benchmarks; "covariate: level" for a row without one (issue 10: one spelling)."""
+    if row.get("name"):
+        return str(row["name"])
     level = row.get("level")
     name = str(row.get("covariate", ""))
-    return plain(name if level in (None, "") else f"{name}: {level}")
+    return name if level in (None, "") else f"{name}: {level}"
 
 
 def plot_balance(result, *, threshold: float = SMD_FLAG) -> Figure:
@@ -132,9 +137,14 @@ def plot_balance(result, *, threshold: float = SMD_FLAG) -> Figure:
     v = view_of(result)
     rows = list(v.data["balance"]["rows"])
     height = 1.6 + 0.26 * max(len(rows), 3)
+    matched = bool(v.data.get("matching"))
+    trimmed = any((v.data.get("flow", {}).get("trimmed_by_group") or {}).values())
+    where = "on the matched sample" if matched else "within strata"
     fig, ax = new_figure("Covariate balance before and after adjustment on the score",
-                         "absolute standardized mean difference (after: within strata, "
-                         "same denominator as before)", size=(7.2, min(height, 14)))
+                         f"absolute standardized mean difference (after: {where}, same "
+                         "denominator as before" + ("; before: the rows kept by the overlap "
+                                                    "rule" if trimmed else "") + ")",
+                         size=(7.2, min(height, 14)))
     if not rows:
         ax.text(0.5, 0.5, "no balance rows on this result", ha="center", transform=ax.transAxes)
         return fig
@@ -153,11 +163,13 @@ def plot_balance(result, *, threshold: float = SMD_FLAG) -> Figure:
     ax.text(threshold, len(rows) - 0.3, f" {threshold:g}", color=INK, fontsize=8, va="bottom")
     ax.hlines(y, np.fmin(before, after), np.fmax(before, after), color=NEUTRAL, linewidth=1.6)
     ax.plot(before, y, linestyle="none", marker="o", markersize=6.5, markerfacecolor="white",
-            markeredgecolor=ALERT, markeredgewidth=1.6, label="before adjustment")
+            markeredgecolor=ALERT, markeredgewidth=1.6,
+            label=("before matching" if matched else "before adjustment")
+            + (" (after trimming)" if trimmed else ""))
     ax.plot(after, y, linestyle="none", marker="D", markersize=5.5, color=ACCENT,
-            label="after: within strata")
+            label=f"after: {where}")
     ax.set_yticks(y)
-    labels = ax.set_yticklabels([_balance_label(r) for r in rows], fontsize=8)
+    labels = ax.set_yticklabels([plain(balance_label(r)) for r in rows], fontsize=8)
     for lab, a in zip(labels, after):
         if np.isfinite(a) and a > threshold:
             lab.set_color(ALERT)

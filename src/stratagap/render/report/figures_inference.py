@@ -17,8 +17,9 @@ from matplotlib.figure import Figure
 from matplotlib.patches import Polygon
 from scipy import stats
 
-from ..formatting import format_p
-from ._style import ACCENT, ALERT, INK, MUTED, NEUTRAL, PALETTE, REFERENCE, new_figure, plain, view_of
+from ..formatting import format_p, format_sig
+from ._style import (ACCENT, ALERT, INK, MUTED, NEUTRAL, PALETTE, REFERENCE, new_figure,
+                     percentage_points, plain, view_of)
 
 __all__ = ["plot_null_distribution", "plot_stratum_effects", "plot_cross_checks",
            "plot_p_value_function", "null_value"]
@@ -93,13 +94,14 @@ def plot_null_distribution(result, *, bins: int = 50) -> Figure:
     ax.axvline(obs, color=INK, linewidth=2.0)
     if alt == "two-sided":
         ax.axvline(2 * centre - obs, color=INK, linewidth=1.0, linestyle=(0, (3, 2)))
-    ax.annotate(f"observed {obs:.3g}\np = {format_p(test.get('p_value'))} ({alt})",
+    ax.annotate(f"observed {format_sig(obs)}\np = {format_p(test.get('p_value'))} ({alt})",
                 xy=(obs, ax.get_ylim()[1] * 0.92), xytext=(8, 0), textcoords="offset points",
                 ha="left" if obs <= ax.get_xlim()[1] * 0.6 + ax.get_xlim()[0] * 0.4 else "right",
                 va="top", fontsize=8.5, color=INK,
                 bbox={"boxstyle": "round,pad=0.3", "fc": "white", "ec": NEUTRAL})
     ax.set_xlabel(label)
-    ax.legend(loc="upper left", fontsize=7.5)
+    fig.legend(*ax.get_legend_handles_labels(), loc="outside lower center", ncols=2,
+               fontsize=7.5)  # below the axes: clear of the bars and the observed value's box
     return fig
 
 
@@ -132,6 +134,9 @@ def plot_stratum_effects(result) -> Figure:
     per_measure = per_measure or ("risk difference" if ratio else measure)
     same = ("ratio" in str(per_measure)) == ratio
     note = "" if same else f"; the {measure} headline is not on this scale"
+    if len(per) > MANY_STRATA:
+        return _many_strata_effects(per, adj, per_measure, level, same,
+                                    "matched sets" if v.data.get("matching") else "strata")
     fig, ax = new_figure("Effect within each propensity-score stratum",
                          f"{per_measure} per stratum, {level}% CI; marker area = stratum weight "
                          f"({adj.get('estimand', '')}){note}",
@@ -158,14 +163,52 @@ def plot_stratum_effects(result) -> Figure:
                              facecolor=ACCENT, edgecolor=INK, linewidth=0.8, zorder=3))
         ax.axvline(est, color=ACCENT, linestyle=(0, (2, 2)), linewidth=1.0)
     ax.axvline(null_value(per_measure), color=INK, linewidth=0.9)
-    labels = [f"stratum {int(s.get('stratum', i)) + 1}  ({s.get('n_exposed', '?')} / "
+    # numbered from 0, as in results.json, strata.csv and the run's messages
+    labels = [f"stratum {int(s.get('stratum', i))}  ({s.get('n_exposed', '?')} / "
               f"{s.get('n_reference', '?')}; w = {float(s.get('weight') or 0):.2f})"
               for i, s in enumerate(per)]
     ax.set_yticks(list(ys) + ([0.6] if pooled else []))
     ax.set_yticklabels(labels + (["pooled (headline)"] if pooled else []), fontsize=8)
     ax.set_ylim(0.1 if pooled else 1.4, n + 1.7)
     ax.grid(axis="y", visible=False)
-    ax.set_xlabel(f"{per_measure}   (counts: exposed / reference)")
+    if per_measure == "risk difference":
+        percentage_points(ax.xaxis)
+        ax.set_xlabel("risk difference, percentage points   (counts: exposed / reference)")
+    else:
+        ax.set_xlabel(f"{per_measure}   (counts: exposed / reference)")
+    return fig
+
+
+#: Beyond this many strata (matched sets, typically) figure 4 shows their distribution.
+MANY_STRATA = 40
+
+
+def _many_strata_effects(per, adj, per_measure, level, same, noun="strata") -> Figure:
+    """Figure 4 for many small strata: a histogram of the stratum effects (weighted by the
+    estimand's stratum weights), with the pooled estimate and its CI when on the same scale."""
+    est = np.array([np.nan if s.get("estimate") is None else float(s["estimate"]) for s in per])
+    w = np.array([float(s.get("weight") or 0) for s in per])
+    ok = np.isfinite(est)
+    one = "matched set" if noun == "matched sets" else "stratum"
+    fig, ax = new_figure(f"Effect within each of the {len(per):,} {noun}",
+                         f"distribution of the {per_measure} per {one} (share of the "
+                         f"estimand's weight); band: pooled headline, {level}% CI")
+    if not ok.any():
+        _empty(ax, "no per-stratum estimates on this result")
+        return fig
+    ax.hist(est[ok], bins=min(40, max(10, int(ok.sum() ** 0.5))), weights=w[ok] / w[ok].sum(),
+            color=REFERENCE, alpha=0.7, label="strata")
+    lo, hi, pooled = adj.get("ci_low"), adj.get("ci_high"), adj.get("estimate")
+    if same and None not in (lo, hi, pooled):
+        ax.axvspan(lo, hi, color=ACCENT, alpha=0.15, label=f"pooled {level}% CI")
+        ax.axvline(pooled, color=ACCENT, linewidth=1.8, label=f"pooled {format_sig(pooled)}")
+    ax.axvline(null_value(per_measure), color=INK, linewidth=0.9)
+    ax.set_xlabel(per_measure)
+    if per_measure == "risk difference":
+        percentage_points(ax.xaxis)
+        ax.set_xlabel("risk difference, percentage points")
+    ax.set_ylabel("share of the weight")
+    ax.legend(loc="upper right", fontsize=7.5)
     return fig
 
 
@@ -234,7 +277,11 @@ def plot_cross_checks(result) -> Figure:
             ax.set_xscale("log")
             _plain_log_ticks(ax)
         ax.grid(axis="y", visible=False)
-        ax.set_xlabel(f"{scale}" + ("\n(band: headline CI)" if headline_here else ""))
+        pp = not kind and (v.data.get("question") or {}).get("outcome_type") == "binary"
+        if pp:  # a risk difference: percentage points, as in the tables
+            percentage_points(ax.xaxis)
+        ax.set_xlabel(("risk difference, percentage points" if pp else f"{scale}")
+                      + ("\n(band: headline CI)" if headline_here else ""))
     axes[0].set_yticks(ys)
     axes[0].set_yticklabels([name for name, _r, _c in rows], fontsize=8)
     axes[0].set_ylim(0.4, len(rows) + 0.6)
@@ -297,14 +344,21 @@ def plot_p_value_function(result) -> Figure:
             ax.set_xscale("log")
             _plain_log_ticks(ax)
         xlabel = f"hypothesized effect τ0 ({measure})"
+    pp = measure == "risk difference"
+    if pp:  # percentage points, as in the tables
+        percentage_points(ax.xaxis)
+        xlabel = xlabel.replace("(risk difference)", "(risk difference, percentage points)")
+
+    def show(x):
+        return f"{format_sig(100 * x)} pp" if pp else format_sig(x)
     ax.axhline(alpha, color=ALERT, linestyle=(0, (4, 2)), linewidth=1.1, label=f"α = {alpha:g}")
     if lo is not None and hi is not None:
         level = int(round(100 * (1 - alpha)))
         ax.hlines(alpha, lo, hi, color=ACCENT, linewidth=5, alpha=0.8,
-                  label=f"{level}% CI {lo:.3g} to {hi:.3g}")
+                  label=f"{level}% CI {show(lo)} to {show(hi)}")
     if est is not None:
         ax.axvline(est, color=INK, linewidth=1.0, linestyle=(0, (1, 1.5)),
-                   label=f"estimate {est:.3g}")
+                   label=f"estimate {show(est)}")
     nv = null_value(measure)
     if ax.get_xlim()[0] <= nv <= ax.get_xlim()[1]:
         ax.axvline(nv, color=MUTED, linewidth=0.8)

@@ -14,6 +14,8 @@ import numpy as np
 from matplotlib.figure import Figure
 
 from ._style import ACCENT, ALERT, INK, MUTED, REFERENCE, new_figure, plain, view_of
+from ..formatting import column_decimals
+from ..verdict import NOT_SIGNIFICANT, not_significant_phrase
 from .figures_inference import null_value
 
 __all__ = ["plot_gamma_curve", "plot_tipping"]
@@ -69,14 +71,16 @@ def plot_gamma_curve(result) -> Figure:
         gs = detail.get("gamma_separable")
         if bracket and gs is not None and abs(gs - gamma) > 1e-9:
             ax.axvline(gs, color=ACCENT, linewidth=1.0, linestyle=(0, (1, 1.5)))
-    elif flag != "ok":
-        ax.text(0.98, 0.04, f"sensitivity value: {flag}", transform=ax.transAxes, ha="right",
-                color=INK, fontsize=8.5)
+    elif flag != "ok":  # above the curve, clear of the legend and the level line
+        words = (f"one-sided test {not_significant_phrase()}: no sensitivity value"
+                 if flag == NOT_SIGNIFICANT else f"sensitivity value: {flag}")
+        ax.text(0.02, 0.97, words, transform=ax.transAxes, ha="left", va="top", color=INK,
+                fontsize=8.5, bbox={"boxstyle": "round,pad=0.3", "fc": "white", "ec": "none"})
     lowest = np.nanmin(np.concatenate([up, sep, prov, [level or 1.0]]))  # keep the level line in view
-    ax.set_ylim(max(_FLOOR / 3, lowest / 3), 1.6)
+    ax.set_ylim(max(_FLOOR / 3, lowest / 3), 1.6 if flag == "ok" else 5.0)  # room for the words
     ax.set_xlabel("Γ  (1 = no hidden bias)")
     ax.set_ylabel("p-value bound (log scale)")
-    ax.legend(loc="lower right", fontsize=7.5)
+    ax.legend(loc="best", fontsize=7.5)  # clear of the level line and the curve
     return fig
 
 
@@ -149,24 +153,32 @@ def plot_tipping(result) -> Figure:
         ax.plot([], [], marker="D", linestyle="none", markerfacecolor=ALERT,
                 markeredgecolor="white", label="reference covariate that would tip the CI")
     ax.set_xlabel("prevalence gap of U: p(U=1 | exposed) − p(U=1 | reference)")
-    ax.set_ylabel("effect of U on the outcome, " + ("risk ratio (null = 1)" if ratio
+    binary = v.data.get("question", {}).get("outcome_type") == "binary"
+    k_pp = 100.0 if binary and not ratio else 1.0  # risk differences in percentage points
+    if k_pp != 1.0:
+        from matplotlib.ticker import FuncFormatter
+        ax.yaxis.set_major_formatter(FuncFormatter(lambda y, _p: f"{k_pp * y:g}"))
+    ax.set_ylabel("effect of U on the outcome, " + ("risk ratio (null = 1)" if ratio else
+                                                      "risk difference, pp (null = 0)" if binary
                                                       else "mean shift (null = 0)"))
     ax.legend(loc="upper right", fontsize=7.5, framealpha=0.9, frameon=True)
     if refs:
-        rows = [[str(k), name if len(name) <= 26 else name[:25] + "…", f"{x:+.3f}",
-                 f"{y:.2f}" if ratio else f"{y:+.2f}", "yes" if tips else "no"]
+        digits = column_decimals([y * k_pp for _x, y, _n, _t in refs])  # one per column
+        rows = [[str(k), name if len(name) <= 18 else name[:17] + "…", f"{x:+.3f}",
+                 f"{y:.{digits}f}" if ratio else f"{y * k_pp:+.{digits}f}", "yes" if tips else "no"]
                 for k, (x, y, name, tips) in enumerate(refs, start=1)]
-        table = side.table(cellText=rows, colLabels=["#", "reference covariate", "gap",
-                                                     "effect", "tips CI"],
-                           cellLoc="left", colLoc="left", colWidths=[0.08, 0.46, 0.17, 0.15, 0.14],
+        table = side.table(cellText=rows, colLabels=["#", "covariate", "gap", "effect",
+                                                     "tips CI"],
+                           cellLoc="left", colLoc="left", colWidths=[0.07, 0.40, 0.17, 0.19, 0.17],
                            bbox=[0.0, max(0.0, 0.92 - 0.075 * (len(rows) + 1)), 0.97,
                                  min(0.92, 0.075 * (len(rows) + 1))])
         table.auto_set_font_size(False)
-        table.set_fontsize(7.5)
+        table.set_fontsize(7)
         for (row, _), cell in table.get_celld().items():
             cell.set_edgecolor("#E4E0D8")
             cell.set_text_props(color=INK, fontweight="bold" if row == 0 else "normal")
-        side.set_title("reference covariates (signed values)", loc="left", fontsize=8)
+        side.set_title("reference covariates (signed values"
+                       + ("; effect in pp)" if k_pp != 1.0 else ")"), loc="left", fontsize=8)
     else:
         side.text(0.0, 0.9, "no reference covariates", color=MUTED, transform=side.transAxes)
     return fig

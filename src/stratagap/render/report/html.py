@@ -17,7 +17,7 @@ import jinja2
 
 from ..formatting import format_p
 from ._context import build_context
-from ._style import figure_bytes, view_of
+from ._style import figure_bytes, finish, view_of
 from .baseline import baseline_latex, baseline_markdown, baseline_table
 from .figures_design import plot_balance, plot_overlap
 from .figures_inference import (plot_cross_checks, plot_null_distribution,
@@ -37,7 +37,8 @@ FIGURES = (
     ("null_distribution", plot_null_distribution, "Distribution of the test statistic under "
      "within-strata shuffles of the exposure labels, with the observed value and p-value."),
     ("stratum_effects", plot_stratum_effects, "Effect within each stratum with its CI, and the "
-     "pooled headline estimate (diamond)."),
+     "pooled headline estimate (diamond); with more than 40 strata (matched sets), the "
+     "distribution of the stratum effects beside the pooled estimate and its CI."),
     ("p_value_function", plot_p_value_function, "The p-value function: p-value against the "
      "hypothesized effect; the CI is where it lies above α."),
     ("cross_checks", plot_cross_checks, "The headline estimate beside the cross-check "
@@ -63,9 +64,7 @@ def _figures(view, formats=("svg",), dpi=150) -> dict:
     """Render every figure once; returns name -> {"caption", formats...: bytes}."""
     out = {}
     for number, (name, function, caption) in enumerate(FIGURES, start=1):
-        fig = function(view)
-        fig.draw_without_rendering()  # lay out once, then freeze it: each save would redo it
-        fig.set_layout_engine("none")
+        fig = finish(function(view))  # laid out once, then frozen: each save would redo it
         entry = {"caption": f"Figure {number}. {caption}"}
         for fmt in formats:
             entry[fmt] = figure_bytes(fig, fmt, dpi=dpi)
