@@ -214,7 +214,8 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
                                      censoring_weights=None if prepared.censoring_weights is None
                                      else prepared.censoring_weights[used],
                                      censoring_score=None if prepared.censoring_score is None
-                                     else prepared.censoring_score[used])
+                                     else prepared.censoring_score[used],
+                                     n_linear=prepared.n_linear)
     cross = _crosscheck.compare_with_headline(cross, adjusted)
     if prepared.censoring_weights is not None:
         warnings.warn("Censoring weights enter the cross-check row 'IPW x censoring weights'; the "

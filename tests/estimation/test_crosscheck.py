@@ -411,3 +411,21 @@ def test_gap_from_the_headline_in_combined_se_units():
                              measure="rr", outcome_type="binary", alpha=0.05, score_source="s")
     out = compare_with_headline(ratio, SimpleNamespace(estimate=1.0, se=0.1, scale="log"))
     assert out.rows[0].headline_gap_z == pytest.approx(math.log(2.0) / math.sqrt(0.05))
+
+
+@pytest.mark.parametrize("n, spline_kept", [(300, False), (3000, True)])
+def test_outcome_models_keep_spline_columns_only_with_ten_units_per_column(n, spline_kept):
+    """The headline's rule (10 units per column in each group) also guards the outcome models of
+    AIPW and standardization; the reference value is statsmodels OLS on the columns used."""
+    y, t, X = simulate(n, 4)
+    rng = np.random.default_rng(9)
+    extra = rng.normal(size=(n, 16))  # stand-ins for spline columns: 18 columns in all
+    Xs = np.column_stack([X, extra])
+    res = cross_checks(y, t, Xs, estimand="ate", outcome_type="continuous", n_linear=2)
+    used = Xs if spline_kept else X
+    Z = sm.add_constant(used)
+    m1 = sm.OLS(y[t == 1], Z[t == 1]).fit().predict(Z).mean()
+    m0 = sm.OLS(y[t == 0], Z[t == 0]).fit().predict(Z).mean()
+    row = next(r for r in res.rows if r.method.startswith("Outcome regression"))
+    assert row.estimate == pytest.approx(m1 - m0, abs=1e-8)
+    assert any("use linear terms" in note for note in res.notes) is (not spline_kept)
