@@ -127,6 +127,15 @@ def test_a_misspelt_flag_gets_a_suggestion(capsys):
     assert "did you mean --exposed-value?" in err and err.count("\n") == 1
 
 
+def test_a_flag_of_the_other_command_is_named_as_such(capsys):
+    from stratagap.cli import main
+    assert main(["demo", "--resamples", "499"]) == 2
+    err = capsys.readouterr().err
+    assert "--resamples is an option of `stratagap analyze`" in err and "did you mean" not in err
+    assert main(["analyze", "x.csv", "--n", "5"]) == 2
+    assert "--n is an option of `stratagap demo`" in capsys.readouterr().err
+
+
 def test_one_stratum_is_said_to_be_no_subclassification():
     import warnings
     import numpy as np

@@ -41,6 +41,9 @@ def _flag_hint(message: str) -> str:
     given = match.group(1)
     flags = sorted(set(_FLAG_OF.values()) | {"--format", "--quiet", "--n", "--seed"})
     close = difflib.get_close_matches(given.replace("_", "-"), flags, n=1, cutoff=0.75)
+    if close and close[0] == given:  # a real flag, of the other command
+        command = "analyze" if given in _FLAG_OF.values() else "demo"
+        return f" ({given} is an option of `stratagap {command}`)"
     return f" (did you mean {close[0]}?)" if close else ""
 
 
