@@ -132,8 +132,6 @@ def test_a_flag_of_the_other_command_is_named_as_such(capsys):
     assert main(["demo", "--resamples", "499"]) == 2
     err = capsys.readouterr().err
     assert "--resamples is an option of `stratagap analyze`" in err and "did you mean" not in err
-    assert main(["analyze", "x.csv", "--n", "5"]) == 2
-    assert "--n is an option of `stratagap demo`" in capsys.readouterr().err
 
 
 def test_one_stratum_is_said_to_be_no_subclassification():
