@@ -73,15 +73,20 @@ def _worst_over_cuts(v, t, lab, gamma):
 CASES = [(seed, binary) for seed in range(12) for binary in (False, True)]
 
 
-@pytest.mark.parametrize("seed, binary", CASES)
-def test_best_found_and_provable_end_bracket_the_enumerated_worst_case(seed, binary):
+def _case(seed, binary):
+    """Up to 4 strata of up to 12 units (fewer units with more strata, to keep enumeration small)."""
     rng = np.random.default_rng(700 + seed)
-    k = int(rng.integers(1, 5))                     # up to 4 strata
+    k = int(rng.integers(1, 5))
     sizes = []
     for _ in range(k):
-        n = int(rng.integers(4, 13 if k <= 2 else 9))  # up to 12 units (fewer with more strata)
+        n = int(rng.integers(4, 13 if k <= 2 else 9))
         sizes.append((n, int(rng.integers(1, n))))
-    v, t, lab = _design(rng, sizes, binary)
+    return _design(rng, sizes, binary)
+
+
+@pytest.mark.parametrize("seed, binary", CASES)
+def test_best_found_and_provable_end_bracket_the_enumerated_worst_case(seed, binary):
+    v, t, lab = _case(seed, binary)
     gammas = [1.3, 2.0, 3.5]
     b = gamma_bounds(v, t, lab, gammas=gammas)
     assert b.method == "bracket"
@@ -99,13 +104,7 @@ def test_the_search_finds_the_enumerated_worst_case_in_most_designs():
     hits = exact = cells = 0
     widest = 0.0
     for seed, binary in CASES:
-        rng = np.random.default_rng(700 + seed)
-        k = int(rng.integers(1, 5))
-        sizes = []
-        for _ in range(k):
-            n = int(rng.integers(4, 13 if k <= 2 else 9))
-            sizes.append((n, int(rng.integers(1, n))))
-        v, t, lab = _design(rng, sizes, binary)
+        v, t, lab = _case(seed, binary)
         b = gamma_bounds(v, t, lab, gammas=[1.3, 2.0, 3.5])
         for g, found, prov, ok in zip(b.gammas, b.p_upper, b.p_provable, b.exact_at):
             cells += 1
