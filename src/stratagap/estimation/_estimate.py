@@ -51,7 +51,8 @@ class StratifiedEstimate(Estimate):
     """The headline: an :class:`Estimate` plus the per-stratum table and the model choices.
 
     ``per_stratum``: one dict per stratum (stratum, n_exposed, n_reference, estimate, se,
-    ci_low, ci_high, model, reason, covariates, weight, reference_mean). ``choices``: one line
+    ci_low, ci_high, model, reason, covariates, interacted, weight, reference_mean; ``interacted``
+    lists the columns whose slope differs by group). ``choices``: one line
     per stratum whose model was simplified, plus the variance rule. ``risk_exposed`` and
     ``risk_reference``: the standardized risks ``sum_s w_s (a_s + tau_s)`` and
     ``sum_s w_s a_s`` (binary outcomes; None otherwise). ``variance_method`` says which

@@ -248,8 +248,10 @@ def stratified_regression(y, t, X, labels, *, estimand, measure="difference", al
             choices.append(f"stratum {int(s)}: {f['model']} ({f['reason']})")
     # dropping constant or collinear columns leaves the fit unchanged: recorded, not warned
     # with spline columns, main-effect splines are a planned rung of the overfitting guard
-    planned = ("interactions",) if n_linear is None or n_linear >= X.shape[1] else (
-        "interactions", "main effects")
+    # partial interactions: the slopes one group cannot estimate (or, with splines, the guard's
+    # excess columns) are shared, recorded per stratum and not warned
+    planned = ("interactions", "partial interactions") if n_linear is None \
+        or n_linear >= X.shape[1] else ("interactions", "partial interactions", "main effects")
     simplified = [(s, f) for s, f in zip(ids, fits)
                   if f["model"] not in planned and X.shape[1] > 0]
     if simplified and not matched:
@@ -269,7 +271,8 @@ def stratified_regression(y, t, X, labels, *, estimand, measure="difference", al
         per.append({"stratum": int(s), "n_exposed": int(a1), "n_reference": int(a0),
                     "estimate": f["tau"], "se": se_s, "ci_low": f["tau"] - z * se_s,
                     "ci_high": f["tau"] + z * se_s, "model": f["model"], "reason": f["reason"],
-                    "covariates": f["columns"], "weight": float(ws),
+                    "covariates": f["columns"], "interacted": f["interacted"],
+                    "weight": float(ws),
                     "reference_mean": f["a"]})
     p1 = p0 = None
     se = math.sqrt(var) if var >= 0 else math.nan
