@@ -56,7 +56,9 @@ class StratifiedEstimate(Estimate):
     per stratum whose model was simplified, plus the variance rule. ``risk_exposed`` and
     ``risk_reference``: the standardized risks ``sum_s w_s (a_s + tau_s)`` and
     ``sum_s w_s a_s`` (binary outcomes; None otherwise). ``variance_method`` says which
-    variance was used; ``settings`` records the thresholds.
+    variance was used; ``settings`` records the thresholds; ``ci_for`` says what the interval
+    is for (the sample average over the analysed units, see
+    :data:`stratagap.estimation.effects.CI_FOR`).
     """
 
     per_stratum: list = field(default_factory=list)
@@ -65,6 +67,8 @@ class StratifiedEstimate(Estimate):
     risk_reference: float | None = None
     variance_method: str = ""
     settings: dict = field(default_factory=dict)
+    #: what the interval is for (the estimand's inference target), in plain words
+    ci_for: str = ""
 
 
 # --------------------------------------------------------------------------- input checks

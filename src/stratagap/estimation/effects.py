@@ -22,6 +22,9 @@ Lin, W. (2013). Agnostic notes on regression adjustments to experimental data: r
 Freedman's critique. Annals of Applied Statistics 7, 295-318.
 Rosenbaum, P. R. (2002). Covariance adjustment in randomized experiments and observational
 studies. Statistical Science 17, 286-327.
+Imbens, G. W. (2004). Nonparametric estimation of average treatment effects under exogeneity:
+a review. Review of Economics and Statistics 86, 4-29 (population, sample and conditional
+average effects).
 """
 
 from __future__ import annotations
@@ -44,6 +47,13 @@ __all__ = ["Estimate", "StratifiedEstimate", "ConstantEffect", "crude", "stratif
            "plain_stratified_difference", "mantel_haenszel", "constant_effect"]
 
 _MEASURES = {"difference", "rr", "or"}
+
+#: The headline's inference target. Lin's HC2 variance is that of the estimate about the average
+#: of the units' own effects, their covariates as observed (Imbens 2004, the conditional average
+#: treatment effect); the interval for a wider population the units stand for would add the
+#: spread of the effect across covariates, Var(tau(X)) / n (docs/methods.md, section 7).
+CI_FOR = ("the average effect over the analysed units, their covariates as observed "
+          "(a sample average)")
 
 
 def _normal_ci(est, se, alpha):
@@ -293,13 +303,14 @@ def stratified_regression(y, t, X, labels, *, estimand, measure="difference", al
         method += "; ratio of standardized (marginal) risks, delta method on the log scale"
     settings = {"interaction_min_extra": int(interaction_min_extra),
                 "spline_units_per_column": _lin.SPLINE_UNITS_PER_COLUMN,
+                "extrapolation_ratio": _lin.EXTRAPOLATION_RATIO,
                 "leverage_tolerance": _lin.LEVERAGE_TOL, "matched_set_max": MATCHED_SET_MAX,
                 "estimand": estimand}
     return StratifiedEstimate(
         float(est), float(se), float(lo), float(hi), out_measure, _label(estimand, population),
         f"{int(n1.sum() + n0.sum())} units in {S} strata ({int(n1.sum())} exposed, "
         f"{int(n0.sum())} reference)", method, alpha, scale, per, choices, p1, p0,
-        variance_method, settings)
+        variance_method, settings, CI_FOR)
 
 
 def _ratio(measure, p1, p0, w, covs, alpha, matched, a, tau):

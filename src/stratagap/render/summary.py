@@ -32,6 +32,8 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
         f"({level}% CI {_n(crude['ci_low'])} to {_n(crude['ci_high'])})",
         f"  adjusted {adj['measure']}: {_n(adj['estimate'])} "
         f"({level}% CI {_n(adj['ci_low'])} to {_n(adj['ci_high'])})",
+        *textwrap.wrap(f"the CI is for {adj['ci_for']}" if adj.get("ci_for") else "", width,
+                       initial_indent="    ", subsequent_indent="    "),
     ]
     if data.get("matching"):
         m = data["matching"]
