@@ -190,8 +190,9 @@ def test_collinear_and_singleton_columns():
 @pytest.mark.parametrize("estimand", ["ate", "att"])
 def test_dummy_absent_from_one_group_enters_as_a_main_effect(estimand):
     # A level present among the exposed only (an extreme stratum): its interaction is not
-    # estimable (the interacted design would be rank deficient), so its slope is shared and the
-    # other columns keep their interactions. Reference: statsmodels OLS with HC2 on that design.
+    # estimable (the interacted design would be rank deficient); a level held by one reference
+    # unit would give that unit leverage 1. Both slopes are shared and the other columns keep
+    # their interactions. Reference: statsmodels OLS with HC2 on that design.
     import statsmodels.api as sm
 
     rng = np.random.default_rng(21)
@@ -199,13 +200,16 @@ def test_dummy_absent_from_one_group_enters_as_a_main_effect(estimand):
     t = (rng.random(n) < 0.5).astype(np.int8)
     x = rng.normal(size=n)
     d = np.where(t == 1, (rng.random(n) < 0.2).astype(float), 0.0)  # level absent if t = 0
-    y = x + 2.0 * d + t * (1.0 + 0.5 * x) + rng.normal(size=n)
-    X = np.column_stack([x, d])
+    # level e: one reference unit holds it (interacted, that unit would get leverage 1)
+    e = np.where(t == 1, (rng.random(n) < 0.2).astype(float), 0.0)
+    e[np.flatnonzero(t == 0)[0]] = 1.0
+    y = x + 2.0 * d - e + t * (1.0 + 0.5 * x) + rng.normal(size=n)
+    X = np.column_stack([x, d, e])
     res = effects.stratified_regression(y, t, X, np.zeros(n, np.int64), estimand=estimand,
-                                        names=["x", "level d"])
+                                        names=["x", "level d", "level e"])
     row = res.per_stratum[0]
     assert row["model"] == "partial interactions" and row["interacted"] == ["x"]
-    assert "main effect only (slope shared by the groups): level d" in row["reason"]
+    assert "main effect only (slope shared by the groups): level d, level e" in row["reason"]
     centre = X.mean(axis=0) if estimand == "ate" else X[t == 1].mean(axis=0)
     Xc = X - centre
     D = np.column_stack([np.ones(n), t, Xc, t * Xc[:, 0]])
