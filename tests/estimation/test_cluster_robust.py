@@ -121,11 +121,17 @@ def _strata_data(seed=5, n=400):
     return y, t, x, labels
 
 
+@pytest.mark.parametrize("shared", [False, True], ids=["interactions", "partial"])
 @pytest.mark.parametrize("estimand", ["ate", "att"])
-def test_headline_refit_keeps_the_estimate_and_one_row_clusters_give_hc2(estimand):
+def test_headline_refit_keeps_the_estimate_and_one_row_clusters_give_hc2(estimand, shared):
     y, t, X, labels = _strata_data()
     names = ["x1", "x2"]
+    if shared:  # a level held by exposed units only: its slope is shared (partial interactions)
+        level = ((t == 1) & (np.arange(y.size) % 3 == 0)).astype(float)
+        X, names = np.column_stack([X, level]), names + ["level"]
     head = effects.stratified_regression(y, t, X, labels, estimand=estimand, names=names)
+    if shared:
+        assert {r["model"] for r in head.per_stratum} == {"partial interactions"}
     w = np.array([row["weight"] for row in head.per_stratum])
     out, row = clustered.clustered_estimate(head, y, t, X, labels, np.arange(y.size),
                                             weights=w, names=names, estimand=estimand,

@@ -187,6 +187,64 @@ def test_collinear_and_singleton_columns():
     assert c.estimate == pytest.approx(a.estimate, abs=1e-9)
 
 
+@pytest.mark.parametrize("estimand", ["ate", "att"])
+def test_dummy_absent_from_one_group_enters_as_a_main_effect(estimand):
+    # A level present among the exposed only (an extreme stratum): its interaction is not
+    # estimable (the interacted design would be rank deficient); a level held by one reference
+    # unit would give that unit leverage 1. Both slopes are shared and the other columns keep
+    # their interactions. Reference: statsmodels OLS with HC2 on that design.
+    import statsmodels.api as sm
+
+    rng = np.random.default_rng(21)
+    n = 300
+    t = (rng.random(n) < 0.5).astype(np.int8)
+    x = rng.normal(size=n)
+    d = np.where(t == 1, (rng.random(n) < 0.2).astype(float), 0.0)  # level absent if t = 0
+    # level e: one reference unit holds it (interacted, that unit would get leverage 1)
+    e = np.where(t == 1, (rng.random(n) < 0.2).astype(float), 0.0)
+    e[np.flatnonzero(t == 0)[0]] = 1.0
+    y = x + 2.0 * d - e + t * (1.0 + 0.5 * x) + rng.normal(size=n)
+    X = np.column_stack([x, d, e])
+    res = effects.stratified_regression(y, t, X, np.zeros(n, np.int64), estimand=estimand,
+                                        names=["x", "level d", "level e"])
+    row = res.per_stratum[0]
+    assert row["model"] == "partial interactions" and row["interacted"] == ["x"]
+    assert "main effect only (slope shared by the groups): level d, level e" in row["reason"]
+    centre = X.mean(axis=0) if estimand == "ate" else X[t == 1].mean(axis=0)
+    Xc = X - centre
+    D = np.column_stack([np.ones(n), t, Xc, t * Xc[:, 0]])
+    fit = sm.OLS(y, D).fit(cov_type="HC2")
+    assert row["estimate"] == pytest.approx(fit.params[1], abs=1e-10)
+    assert row["se"] == pytest.approx(fit.bse[1], rel=1e-9)
+    assert not any("simplified" in c for c in res.choices)
+
+
+def test_interactions_that_extrapolate_give_way_to_main_effects():
+    # The reference group covers a narrow range of x, the exposed a wide one: the reference
+    # group's own slope extrapolated to the exposed (ATT) has a design variance far above that
+    # of main effects, so main effects are used and the ratio recorded. The ratio is computed
+    # here from (D'D)^-1 with numpy.
+    rng = np.random.default_rng(22)
+    n1, n0 = 200, 30
+    x = np.concatenate([rng.normal(0, 2, n1), rng.uniform(-0.1, 0.1, n0)])
+    t = np.r_[np.ones(n1), np.zeros(n0)].astype(np.int8)
+    y = x + t + rng.normal(size=n1 + n0)
+    with pytest.warns(ModelWarning, match="simplified"):
+        res = effects.stratified_regression(y, t, x[:, None], np.zeros(n1 + n0, np.int64),
+                                            estimand="att", names=["x"])
+    row = res.per_stratum[0]
+    xc = x - x[t == 1].mean()
+    D = np.column_stack([np.ones(n1 + n0), t, xc, t * xc])
+    ratio = np.linalg.inv(D.T @ D)[1, 1] / np.linalg.inv(D[:, :3].T @ D[:, :3])[1, 1]
+    assert ratio > 4
+    assert row["model"] == "main effects" and f"{ratio:.3g} times" in row["reason"]
+    # the same design with a reference group as wide as the exposed keeps the interactions
+    x2 = np.concatenate([x[:n1], rng.normal(0, 2, n0)])
+    wide = effects.stratified_regression(y, t, x2[:, None], np.zeros(n1 + n0, np.int64),
+                                         estimand="att", names=["x"])
+    assert wide.per_stratum[0]["model"] == "interactions"
+
+
 def test_matched_pairs_use_between_pair_variance():
     rng = np.random.default_rng(9)
     S = 40
@@ -528,8 +586,8 @@ def test_property_any_small_design_gives_a_recorded_result(seed, n_strata, size,
         warnings.simplefilter("ignore", ModelWarning)
         res = effects.stratified_regression(y, t, X, labels, estimand=estimand)
     assert math.isfinite(res.estimate)
-    assert all(r["model"] in ("interactions", "main effects", "difference of means")
-               for r in res.per_stratum)
+    assert all(r["model"] in ("interactions", "partial interactions", "main effects",
+                              "difference of means") for r in res.per_stratum)
     assert math.isnan(res.se) or res.se >= 0
     json.dumps(res.to_dict(), allow_nan=False)
     perm = rng.permutation(len(t))
@@ -570,15 +628,23 @@ def test_spline_ladder_guard_of_ten_units_per_column():
     labels = np.repeat([0, 1, 2], [100, 60, 40]).astype(np.int64)
     t = np.zeros(n, dtype=np.int8)
     t[:40] = 1     # stratum 0: 40 exposed, 60 reference >= 10 x 4: interacted splines
-    t[100:125] = 1  # stratum 1: 25 exposed < 40, 60 units in all >= 40: main-effect splines
-    t[160:175] = 1  # stratum 2: 15 exposed, 40 units = 10 x 4 in all: main-effect splines
+    t[100:125] = 1  # stratum 1: 25 exposed carry 2 interacted columns; 60 >= 10 x (4 + 2)
+    t[160:175] = 1  # stratum 2: 15 exposed carry 1; 40 units < 10 x (4 + 1): main effects
     y = x[:, 0] + t + rng.normal(size=n)
     res = effects.stratified_regression(y, t, x, labels, estimand="att", n_linear=2,
                                         names=["a", "b", "a: spline 1", "b: spline 1"])
     s0, s1, s2 = res.per_stratum
     assert s0["model"] == "interactions" and s0["reason"] == "all checks passed"
-    assert s1["model"] == "main effects" and "interacted splines need >= 40" in s1["reason"]
-    assert s2["model"] == "main effects"
+    # stratum 1: the first covariate's columns (linear and spline) interacted, the second's
+    # shared by the groups
+    assert s1["model"] == "partial interactions" and s1["interacted"] == ["a", "a: spline 1"]
+    assert "each group carries 2 interacted columns of 4" in s1["reason"]
+    m1 = labels == 1
+    Xc1 = x[m1] - x[m1][t[m1] == 1].mean(axis=0)
+    D1 = np.column_stack([np.ones(m1.sum()), t[m1], Xc1, t[m1][:, None] * Xc1[:, [0, 2]]])
+    assert s1["estimate"] == pytest.approx(np.linalg.lstsq(D1, y[m1], rcond=None)[0][1],
+                                           abs=1e-10)
+    assert s2["model"] == "main effects" and s2["interacted"] == []
     assert res.settings["spline_units_per_column"] == 10
     # the interacted fit is Lin's on all four columns, centred at the exposed mean (ATT)
     m = labels == 0

@@ -130,6 +130,15 @@ MUTATIONS = [
     Mutation("hc0_instead_of_hc2", "the within-stratum variance drops the HC2 leverage correction",
              "src/stratagap/_base/linalg.py",
              "u = e * e / (1.0 - h)", "u = e * e", (DEFAULTS,)),
+    Mutation("no_shared_slopes", "a column one group cannot estimate is interacted anyway (the "
+             "interacted fit fails and the stratum falls to main effects)",
+             "src/stratagap/estimation/_within_strata.py",
+             "        if ok:\n            candidates.append(j)",
+             "        candidates.append(j)", ("tests/estimation/test_effects.py",)),
+    Mutation("no_extrapolation_guard", "interactions kept however far a group's fit extrapolates",
+             "src/stratagap/estimation/_within_strata.py",
+             "EXTRAPOLATION_RATIO = 4.0", "EXTRAPOLATION_RATIO = float('inf')",
+             ("tests/estimation/test_effects.py",)),
 ]
 
 

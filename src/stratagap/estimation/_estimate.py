@@ -61,11 +61,14 @@ class StratifiedEstimate(Estimate):
     """The headline: an :class:`Estimate` plus the per-stratum table and the model choices.
 
     ``per_stratum``: one dict per stratum (stratum, n_exposed, n_reference, estimate, se,
-    ci_low, ci_high, model, reason, covariates, weight, reference_mean). ``choices``: one line
+    ci_low, ci_high, model, reason, covariates, interacted, weight, reference_mean; ``interacted``
+    lists the columns whose slope differs by group). ``choices``: one line
     per stratum whose model was simplified, plus the variance rule. ``risk_exposed`` and
     ``risk_reference``: the standardized risks ``sum_s w_s (a_s + tau_s)`` and
     ``sum_s w_s a_s`` (binary outcomes; None otherwise). ``variance_method`` says which
-    variance was used; ``settings`` records the thresholds.
+    variance was used; ``settings`` records the thresholds; ``ci_for`` says what the interval
+    is for (the sample average over the analysed units, see
+    :data:`stratagap.estimation.effects.CI_FOR`).
     """
 
     per_stratum: list = field(default_factory=list)
@@ -74,6 +77,8 @@ class StratifiedEstimate(Estimate):
     risk_reference: float | None = None
     variance_method: str = ""
     settings: dict = field(default_factory=dict)
+    #: what the interval is for (the estimand's inference target), in plain words
+    ci_for: str = ""
 
 
 # --------------------------------------------------------------------------- input checks

@@ -76,8 +76,9 @@ def stratum_design(y, t, X, labels, per_stratum, names, estimand):
         Z = Xs[:, cols]
         Z = Z - (Z.mean(axis=0) if estimand == "ate" else Z[ts == 1].mean(axis=0))
         parts = [np.ones(m.sum()), ts, Z]
-        if entry["model"] in ("interactions", "linear interactions"):
-            parts.append(ts[:, None] * Z)
+        inter = [cols.index(index[c]) for c in entry.get("interacted", [])]
+        if inter:  # "interactions" or "partial interactions" (the per-stratum record)
+            parts.append(ts[:, None] * Z[:, inter])
         block = np.column_stack(parts)
         blocks.append((m, block, width))
         a_cols.append(width)

@@ -22,6 +22,9 @@ Lin, W. (2013). Agnostic notes on regression adjustments to experimental data: r
 Freedman's critique. Annals of Applied Statistics 7, 295-318.
 Rosenbaum, P. R. (2002). Covariance adjustment in randomized experiments and observational
 studies. Statistical Science 17, 286-327.
+Imbens, G. W. (2004). Nonparametric estimation of average treatment effects under exogeneity:
+a review. Review of Economics and Statistics 86, 4-29 (population, sample and conditional
+average effects).
 """
 
 from __future__ import annotations
@@ -44,6 +47,13 @@ __all__ = ["Estimate", "StratifiedEstimate", "ConstantEffect", "crude", "stratif
            "plain_stratified_difference", "mantel_haenszel", "constant_effect"]
 
 _MEASURES = {"difference", "rr", "or"}
+
+#: The headline's inference target. Lin's HC2 variance is that of the estimate about the average
+#: of the units' own effects, their covariates as observed (Imbens 2004, the conditional average
+#: treatment effect); the interval for a wider population the units stand for would add the
+#: spread of the effect across covariates, Var(tau(X)) / n (docs/methods.md, section 7).
+CI_FOR = ("the average effect over the analysed units, their covariates as observed "
+          "(a sample average)")
 
 
 def _normal_ci(est, se, alpha):
@@ -255,8 +265,10 @@ def stratified_regression(y, t, X, labels, *, estimand, measure="difference", al
             choices.append(f"stratum {int(s)}: {f['model']} ({f['reason']})")
     # dropping constant or collinear columns leaves the fit unchanged: recorded, not warned
     # with spline columns, main-effect splines are a planned rung of the overfitting guard
-    planned = ("interactions",) if n_linear is None or n_linear >= X.shape[1] else (
-        "interactions", "main effects")
+    # partial interactions: the slopes one group cannot estimate (or, with splines, the guard's
+    # excess columns) are shared, recorded per stratum and not warned
+    planned = ("interactions", "partial interactions") if n_linear is None \
+        or n_linear >= X.shape[1] else ("interactions", "partial interactions", "main effects")
     simplified = [(s, f) for s, f in zip(ids, fits)
                   if f["model"] not in planned and X.shape[1] > 0]
     if simplified and not matched:
@@ -276,7 +288,8 @@ def stratified_regression(y, t, X, labels, *, estimand, measure="difference", al
         per.append({"stratum": int(s), "n_exposed": int(a1), "n_reference": int(a0),
                     "estimate": f["tau"], "se": se_s, "ci_low": f["tau"] - z * se_s,
                     "ci_high": f["tau"] + z * se_s, "model": f["model"], "reason": f["reason"],
-                    "covariates": f["columns"], "weight": float(ws),
+                    "covariates": f["columns"], "interacted": f["interacted"],
+                    "weight": float(ws),
                     "reference_mean": f["a"]})
     p1 = p0 = None
     se = math.sqrt(var) if var >= 0 else math.nan
@@ -297,13 +310,14 @@ def stratified_regression(y, t, X, labels, *, estimand, measure="difference", al
         method += "; ratio of standardized (marginal) risks, delta method on the log scale"
     settings = {"interaction_min_extra": int(interaction_min_extra),
                 "spline_units_per_column": _lin.SPLINE_UNITS_PER_COLUMN,
+                "extrapolation_ratio": _lin.EXTRAPOLATION_RATIO,
                 "leverage_tolerance": _lin.LEVERAGE_TOL, "matched_set_max": MATCHED_SET_MAX,
                 "estimand": estimand}
     return StratifiedEstimate(
         float(est), float(se), float(lo), float(hi), out_measure, _label(estimand, population),
         f"{int(n1.sum() + n0.sum())} units in {S} strata ({int(n1.sum())} exposed, "
         f"{int(n0.sum())} reference)", method, alpha, scale, per, choices, p1, p0,
-        variance_method, settings)
+        variance_method, settings, CI_FOR)
 
 
 def _ratio(measure, p1, p0, w, covs, alpha, matched, a, tau):

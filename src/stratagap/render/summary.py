@@ -33,6 +33,8 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
         f", after {_n(data['balance']['max_abs_smd_after'], 3)}",
         f"  crude {crude['measure']}: {_effect(crude, binary, f'{level}% CI ')}",
         f"  adjusted {adj['measure']}: {_effect(adj, binary, f'{level}% CI ')}",
+        *textwrap.wrap(f"the CI is for {adj['ci_for']}" if adj.get("ci_for") else "", width,
+                       initial_indent="    ", subsequent_indent="    "),
     ]
     lines.extend(_rate_lines(data))  # rate outcomes: per 1,000, rate ratio, events/person-time
     if data.get("matching"):
