@@ -40,7 +40,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from .._base.linalg import COLLINEAR_TOL, LEVERAGE_TOL, hc2_ols, ordered_independent_columns
+from .._base.linalg import LEVERAGE_TOL, hc2_ols, ordered_independent_columns  # noqa: F401 (LEVERAGE_TOL: effects reads it here)
 
 #: Overfitting guard with spline columns: units per design column (each group for the interacted
 #: model, the stratum for main effects). Common practice: about 10 observations per parameter

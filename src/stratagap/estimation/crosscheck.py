@@ -50,7 +50,7 @@ from .._base.checks import check_alpha
 from ..errors import InputError
 from ._within_strata import SPLINE_UNITS_PER_COLUMN
 from ._ipw import MAX_SHARE_FLAG, _weight_parts, fit_score, flag_weights, ipw_fit, weight_summary
-from ._crosscheck_result import (DIFFERS_Z, CrossCheckResult, CrossCheckRow, WeightDiagnostics,
+from ._crosscheck_result import (CrossCheckResult, CrossCheckRow, WeightDiagnostics,
                                 compare_with_headline)
 
 __all__ = [

@@ -33,7 +33,7 @@ from .._base.checks import check_alpha
 from ..errors import InputError
 from .._base.layout import layout_for
 from ..inference import Statistic
-from ._nchyper import _cut_moments, _normal_sf, _perm_moments
+from ._nchyper import _normal_sf, _perm_moments
 from . import _gamma_monte_carlo as _mc
 from ._gamma_results import GammaBounds, SensitivityValue, anchor_at_one
 from ._gamma_pairs import PairsBound, is_pairs

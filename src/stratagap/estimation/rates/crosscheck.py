@@ -70,7 +70,7 @@ def _row(method, mu, cov, *, alpha, estimand, label, se_method, notes=(), detail
 
 def ipw_fit_rates(y, t, pt, sfit, estimand):
     """Hájek IP-weighted rates with the stacked sandwich covariance (see the module docstring)."""
-    Z, beta, e, ok = sfit["Z"], sfit["beta"], sfit["e"], sfit["ok"]
+    Z, e, ok = sfit["Z"], sfit["e"], sfit["ok"]
     n, q = Z.shape
     w1, w0, g1, g0 = _weight_parts(e, t, estimand)
     mu1 = np.sum(w1 * y) / np.sum(w1 * pt)  # weighted events / weighted person-time
