@@ -55,3 +55,32 @@ def test_headline_ci_covers_the_demo_truth_at_about_95_percent(estimand):
         hits = [_one(1000 + s, estimand) for s in range(300)]
     coverage = np.mean(hits)
     assert 0.91 <= coverage <= 0.99, coverage
+
+
+def test_sick_leave_times_follow_the_stated_hazards():
+    """Independent check of the time-to-event generator: within each shift, the Kaplan-Meier
+    risk at a horizon (statsmodels SurvfuncRight, Greenwood SE) estimates the group's mean of
+    1 - exp(-hazard x horizon), censoring being independent of everything."""
+    from statsmodels.duration.survfunc import SurvfuncRight
+    from stratagap.demo import make_sick_leave_data
+    d = make_sick_leave_data(n=20000, seed=11)
+    # rounding up to whole days delays an event by under a day: about hazard x 1 in risk
+    for shift, hazard in (("days", "_hazard_days"), ("nights", "_hazard_nights")):
+        g = d[d["shift"] == shift]
+        km = SurvfuncRight(g["days_followed"], g["sick_leave"])
+        i = np.searchsorted(km.surv_times, 365, side="right") - 1
+        risk, se = 1 - km.surv_prob[i], km.surv_prob_se[i]
+        truth = float(np.mean(1 - np.exp(-g[hazard] * 365)))
+        assert abs(risk - truth) < 4 * se + float(g[hazard].mean()), (shift, risk, truth, se)
+
+
+def test_sick_leave_truth_and_the_unchanged_blood_pressure_columns():
+    from stratagap.demo import make_sick_leave_data, true_risk_difference
+    d = make_sick_leave_data(n=800, seed=4)
+    base = make_shift_work_data(n=800, seed=4)
+    assert d[base.columns].equals(base)  # the time-to-event stream leaves the rest as it was
+    got = true_risk_difference(d, d["staff_id"].to_numpy(), 365)
+    gap = np.exp(-d["_hazard_days"] * 365) - np.exp(-d["_hazard_nights"] * 365)
+    assert got["ate"] == pytest.approx(gap.mean(), abs=1e-12) and got["ate"] > 0
+    null = make_sick_leave_data(n=800, seed=4, null=True)
+    assert true_risk_difference(null, null["staff_id"], 365)["ate"] == 0.0
