@@ -144,6 +144,8 @@ def test_risk_difference_km_only_and_bootstrap_se():
     again = adjusted_risk_difference(time, event, t, np.zeros((time.size, 0)), codes, weights,
                                      1.0, estimand="ate", bootstrap=400, seed=3)
     assert np.array_equal(rd.bootstrap_draws, again.bootstrap_draws)  # seeded
+    assert rd.risk_ratio["estimate"] == pytest.approx(rd.risk_exposed / rd.risk_reference)
+    assert rd.risk_ratio["ci_low"] < rd.risk_ratio["estimate"] < rd.risk_ratio["ci_high"]
 
 
 def test_risk_difference_uses_cox_where_events_allow():

@@ -16,7 +16,8 @@ Kaplan-Meier ``S(H)``, recorded per stratum.
 Confidence interval: a bootstrap within stratum-groups (group sizes per stratum fixed, so the
 estimand weights are fixed), the whole within-stratum procedure repeated; ``B`` resamples from
 the named stream ``"survival-bootstrap"`` of the run's seed, in blocks of 250 with one child
-stream each (results do not depend on the batch size); interval ``estimate +- z SE_boot``.
+stream each (results do not depend on the batch size); interval ``estimate +- z SE_boot``. The
+risk ratio at the horizon ``R_1 / R_0`` gets its interval from the SE of the bootstrap log ratios.
 
 References
 ----------
@@ -124,13 +125,14 @@ class RiskDifference:
     per_stratum: list
     rule: str
     bootstrap: dict
+    risk_ratio: dict = field(default_factory=dict)
     bootstrap_draws: np.ndarray = field(repr=False, default=None)
 
     def to_dict(self) -> dict:
         d = {k: getattr(self, k) for k in ("estimate", "se", "ci_low", "ci_high",
                                            "risk_exposed", "risk_reference", "horizon",
                                            "estimand", "alpha", "per_stratum", "rule",
-                                           "bootstrap")}
+                                           "bootstrap", "risk_ratio")}
         return jsonable(d)
 
 
@@ -164,7 +166,7 @@ def adjusted_risk_difference(time, event, t, X, codes, weights, horizon, *, esti
     cells = [[np.flatnonzero((codes == s) & (t == g)) for g in (1, 0)] for s in range(S)]
     surv, models = _stratum_risks(time, event, t, X, codes, S, estimand, horizon, cells)
     est, r1, r0 = _combine(surv, weights)
-    draws = np.full(bootstrap, np.nan)
+    draws = np.full((bootstrap, 3), np.nan)  # risk difference, risk exposed, risk reference
     done = 0
     for block, gen in enumerate(bootstrap_generators(seed, "survival-bootstrap", bootstrap)):
         size = min(BLOCK, bootstrap - block * BLOCK)
@@ -174,12 +176,21 @@ def adjusted_risk_difference(time, event, t, X, codes, weights, horizon, *, esti
             bsurv, _ = _stratum_risks(time[rows], event[rows], t[rows], X[rows], codes[rows], S,
                                       estimand, horizon,
                                       _cells_of(codes[rows], t[rows], S))
-            draws[block * BLOCK + b] = _combine(bsurv, weights)[0]
+            draws[block * BLOCK + b] = _combine(bsurv, weights)
             done += 1
         if progress is not None:
             progress(done, bootstrap)
-    se = float(np.std(draws, ddof=1)) if bootstrap > 1 else np.nan
     z = float(stats.norm.isf(alpha / 2))
+    se = float(np.std(draws[:, 0], ddof=1)) if bootstrap > 1 else np.nan
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_rr = np.log(draws[:, 1] / draws[:, 2])
+        rr = r1 / r0 if r0 > 0 else np.nan
+    ok = np.isfinite(log_rr)
+    se_log = float(np.std(log_rr[ok], ddof=1)) if ok.sum() > 1 and np.isfinite(rr) and rr > 0 \
+        else np.nan
+    ratio = {"estimate": rr, "se_log": se_log,
+             "ci_low": rr * np.exp(-z * se_log) if np.isfinite(se_log) else np.nan,
+             "ci_high": rr * np.exp(z * se_log) if np.isfinite(se_log) else np.nan}
     per = [{"stratum": s + 1, "weight": float(weights[s]),
             "risk_exposed": float(1 - surv[s, 0]), "risk_reference": float(1 - surv[s, 1]),
             "difference": float(surv[s, 1] - surv[s, 0]),
@@ -195,7 +206,7 @@ def adjusted_risk_difference(time, event, t, X, codes, weights, horizon, *, esti
     return RiskDifference(estimate=est, se=se, ci_low=est - z * se, ci_high=est + z * se,
                           risk_exposed=r1, risk_reference=r0, horizon=float(horizon),
                           estimand=estimand, alpha=alpha, per_stratum=per, rule=rule,
-                          bootstrap=boot, bootstrap_draws=draws)
+                          bootstrap=boot, risk_ratio=ratio, bootstrap_draws=draws)
 
 
 def _cells_of(codes, t, S):
