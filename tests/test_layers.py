@@ -28,7 +28,7 @@ LAYERS = [
     ("sensitivity",),
     ("spec", "result"),
     ("render",),
-    ("pipeline", "_cluster_wiring"),
+    ("pipeline", "_cluster_wiring", "_followup_wiring", "_survival_wiring", "_rate_wiring"),
     ("cli", "demo", "__main__", ""),
 ]
 

@@ -47,7 +47,14 @@ def _flag_hint(message: str) -> str:
 # (flag, spec field, type, help). Defaults live in AnalysisSpec only, so there is one source.
 _OPTIONS = [
     ("--exposure", "exposure", str, "column holding the two groups"),
-    ("--outcome", "outcome", str, "outcome column (binary or numeric)"),
+    ("--outcome", "outcome", str, "outcome column (binary or numeric; with --time the event "
+     "indicator, with --person-time the event count)"),
+    ("--time", "time", str, "follow-up time column (> 0): the outcome is then the time to an "
+     "event, --outcome its 0/1 event indicator (0 = censored)"),
+    ("--horizon", "horizon", str, "--time: follow-up time at which the risk difference is read "
+     "(default: the last time with enough people at risk in every stratum and group)"),
+    ("--person-time", "person_time", str, "person-time column (> 0): the outcome is then a rate, "
+     "--outcome the count of events per person"),
     ("--covariates", "covariates", str, "comma-separated measured confounders"),
     ("--formula", "formula", str, "score-model right-hand side in Wilkinson notation, e.g. "
      "'age + I(age**2) + C(role)'; used for balance checks too"),
@@ -105,7 +112,7 @@ def as_flags(text: str) -> str:
 
 #: --help shows the options in these groups, in this order.
 _GROUP_TITLES = {
-    "data": ("exposure", "outcome", "covariates", "formula", "terms", "exposed_value",
+    "data": ("exposure", "outcome", "time", "horizon", "person_time", "covariates", "formula", "terms", "exposed_value",
              "outcome_type", "outcome_event", "missing", "negative_control", "cluster",
              "cluster_level"),
     "design": ("estimand", "n_strata", "strata_method", "strata_column", "design", "per_exposed",

@@ -29,6 +29,7 @@ from .stratify import strata as _strata
 from .stratify import matching as _matching
 from ._base.layout import StratumLayout
 from . import _cluster_wiring as _clusters
+from . import _followup_wiring as _followup
 from .errors import InputError, MissingDataWarning, StrataWarning, StratagapWarning
 from .result import (AnalysisResult, CAUTIONS, TEST_LABELS, ParticipantFlow, PermutationTests,
                      PreparedSummary, versions)
@@ -105,15 +106,16 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
         outcome_event=spec.outcome_event, formula=spec.formula, missing=spec.missing,
         strata_column=spec.strata_column, negative_control=spec.negative_control,
         censoring_weights=spec.censoring_weights, pool_rare_levels=spec.pool_rare_levels,
-        terms=spec.terms, cluster=spec.cluster)
+        terms=spec.terms, cluster=spec.cluster, time=spec.time, person_time=spec.person_time)
     clusters = _clusters.structure(table, spec, prepared)  # None without `cluster`
     clock.lap("data")
     binary = prepared.outcome_type == "binary"
-    if spec.measure != "difference" and not binary:
+    if spec.measure != "difference" and not binary and prepared.followup is None:
         raise InputError(f"`measure={spec.measure}` needs a binary outcome; "
                          f"{spec.outcome!r} is continuous: use `measure=difference`")
-    crude = _effects.crude(prepared.y, prepared.t, prepared.outcome_type, alpha=spec.alpha,
-                           measure=spec.measure if prepared.outcome_type == "binary" else "difference")
+    crude = None if prepared.followup is not None else _effects.crude(  # follow-up: own crude
+        prepared.y, prepared.t, prepared.outcome_type, alpha=spec.alpha,
+        measure=spec.measure if prepared.outcome_type == "binary" else "difference")
     clock.lap("effects")
 
     cluster_design = None
@@ -167,6 +169,18 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
     clock.lap("balance")
 
     layout = StratumLayout.build(labels, t, spec.estimand)  # one layout of the analysed rows
+    design = dict(propensity=propensity, overlap=overlap, strata=strata, matching=matching,
+                  balance=balance, keep=keep, used=used, labels=labels, t=t, y=y)
+    if prepared.followup is not None:  # time to an event, or events over person-time
+        context = _followup.FollowupContext(
+            spec=spec, prepared=prepared, used=used, labels=labels, t=t, y=y, X=X,
+            followup=prepared.followup[used], weights=weights, layout=layout,
+            population=population, propensity=propensity, overlap=overlap, strata=strata,
+            balance=balance, terms=terms, progress=progress, names=prepared.design_names,
+            n_linear=prepared.n_linear)
+        outcome_parts = _followup.followup_parts(context)
+        clock.lap("followup")
+        return _assemble(spec, prepared, design, outcome_parts, clock)
     tests, draws = _tests(spec, y, t, X, labels, layout, binary, progress)
     clock.lap("tests")
     headline_measure = "difference" if spec.measure == "difference" else spec.measure
@@ -234,30 +248,42 @@ def _run(table: pd.DataFrame, spec: AnalysisSpec, progress, clock) -> dict:
             plain=plain, risk_ratio=risk_ratio, sensitivity=sensitivity,
             score=propensity.score[used], terms=terms, binary=binary, progress=progress)
         clock.lap("clusters")
+    test_set = PermutationTests(main=tests["main"], statistic_kind=spec.statistic,
+                                statistic_label=TEST_LABELS[spec.statistic],
+                                studentized=tests.get("studentized"),
+                                sum_statistic=tests.get("sum"))
+    outcome_parts = dict(
+        tests=test_set, crude=crude, adjusted=adjusted, plain=plain, constant_effect=constant,
+        mantel_haenszel=mh, risk_ratio=risk_ratio, cross_checks=cross,
+        heterogeneity=heterogeneity, sensitivity=sensitivity, negative_control=negative)
+    outcome_parts.update(cluster_parts)  # the cluster-level test and bounds, the CR2 intervals
+    return _assemble(spec, prepared, design, outcome_parts, clock)
+
+
+def _assemble(spec, prepared, design: dict, outcome_parts: dict, clock) -> dict:
+    """The result's fields: the study design's stages, the outcome's, the flow and the verdict."""
+    propensity, overlap, strata, matching = (design[k] for k in (
+        "propensity", "overlap", "strata", "matching"))
+    keep, used, labels, t = (design[k] for k in ("keep", "used", "labels", "t"))
     flow = ParticipantFlow.from_stages(prepared.flow, trimmed_by_group=overlap.set_aside,
                                        strata_set_aside_by_group=getattr(strata, "set_aside", {})
                                        if matching is None else {},
                                        t_analysed=t, not_matched_by_group=None
                                        if matching is None else strata.set_aside)
-    test_set = PermutationTests(main=tests["main"], statistic_kind=spec.statistic,
-                                statistic_label=TEST_LABELS[spec.statistic],
-                                studentized=tests.get("studentized"),
-                                sum_statistic=tests.get("sum"))
     parts = dict(
         prepared_summary=_prepared_summary(prepared, used), flow=flow, propensity=propensity,
-        overlap=overlap, strata=strata, balance=balance, tests=test_set, crude=crude,
-        adjusted=adjusted, plain=plain, constant_effect=constant, mantel_haenszel=mh,
-        risk_ratio=risk_ratio, cross_checks=cross, heterogeneity=heterogeneity,
-        sensitivity=sensitivity, negative_control=negative, matching=matching,
+        overlap=overlap, strata=strata, balance=design["balance"], matching=matching,
         arrays={"score": propensity.score, "t_all": prepared.t, "keep": keep, "used": used,
-                "labels": labels, "t": t, "y": y,
+                "labels": labels, "t": t, "y": design["y"],
                 "row_ids": prepared.row_ids,
                 "matched_sets": None if matching is None else _matching.matched_sets_rows(
                     matching, prepared.t, prepared.row_ids, keep),
                 # covariate columns of the analysed rows, for the baseline table
                 "raw": prepared.raw.iloc[used].reset_index(drop=True)},
     )
-    parts.update(cluster_parts)  # the cluster-level test and bounds, the CR2 intervals
+    if prepared.followup is not None:  # follow-up time or person-time of the analysed rows
+        parts["arrays"]["followup"] = prepared.followup[used]
+    parts.update(outcome_parts)
     parts["verdict"] = write_verdict(spec=spec, **{k: parts[k] for k in (
         "crude", "adjusted", "tests", "balance", "sensitivity", "cross_checks",
         "negative_control", "overlap")})

@@ -171,6 +171,8 @@ class AnalysisResult:
     arrays: dict = field(compare=False, repr=False)
     matching: Any = None  # design=match: stratagap.stratify.matching.Matching
     clusters: Any = None  # the `clusters` block, only with `cluster` (stratagap._cluster_wiring)
+    #: the `followup` block, only for time-to-event and rate outcomes (stratagap._followup_wiring)
+    followup: Any = None
 
     # -- convenience -----------------------------------------------------------------
     @property
@@ -222,6 +224,8 @@ class AnalysisResult:
         adjusted["mantel_haenszel"] = jsonable(self.mantel_haenszel)
         if self.risk_ratio is not None and self.risk_ratio is not self.adjusted:
             adjusted["standardized_risk_ratio"] = jsonable(self.risk_ratio)
+        if hasattr(self.followup, "adjusted_fields"):  # horizon, hazard ratio, rate ratio, ...
+            adjusted.update(jsonable(self.followup.adjusted_fields()))
 
         cross = jsonable(self.cross_checks)
         strata = jsonable(self.strata)
@@ -256,6 +260,7 @@ class AnalysisResult:
             "cross_check_weights": cross["weights"],
             "sensitivity": self.sensitivity,
             **({} if self.matching is None else {"matching": self.matching}),
+            **({} if self.followup is None else {"followup": self.followup}),
             "negative_control": self.negative_control,
             "verdict": self.verdict,
             "warnings": [dict(w) for w in self.warnings],

@@ -46,6 +46,9 @@ CLUSTER_LEVELS = ("auto", "cluster", "unit")
 MAX_RESAMPLES = 10_000_000
 DESIGNS = ("strata", "match")
 MATCHING_FIELDS = ("design", "per_exposed", "caliper_sd", "same_value_on")
+#: Follow-up outcomes: with `time` the outcome is an event indicator (time-to-event); with
+#: `person_time` it is an event count (rate). Omitted from results.json when unset.
+FOLLOWUP_FIELDS = ("time", "horizon", "person_time")
 
 
 @dataclass(frozen=True)
@@ -90,6 +93,10 @@ class AnalysisSpec:
     #: the assigned unit (hospital, clinic, region): see stratagap.data._clusters
     cluster: str | None = None
     cluster_level: str = "auto"
+    #: follow-up outcomes (stratagap._followup_wiring): time to an event, or events over person-time
+    time: str | None = None
+    horizon: float | None = None
+    person_time: str | None = None
     data_path: str | None = field(default=None, compare=False)
 
     def __post_init__(self):
@@ -108,6 +115,9 @@ class AnalysisSpec:
                 del out[key]
         if out["cluster"] is None:  # results without --cluster keep their keys
             del out["cluster"], out["cluster_level"]
+        for key in FOLLOWUP_FIELDS:  # results of mean and risk outcomes keep their keys
+            if out[key] is None:
+                del out[key]
         return out
 
 
@@ -203,6 +213,7 @@ def _check(spec: AnalysisSpec) -> None:
         raise InputError("`strata_column` and `strata_method=adaptive` exclude each other: choose one")
     if spec.measure != "difference" and spec.outcome_type == "continuous":
         raise InputError(f"`measure={spec.measure}` needs a binary outcome; use `measure=difference`")
+    _check_followup(spec, set_)
 
 
 def _check_design(spec, set_) -> None:
@@ -233,6 +244,50 @@ def _check_design(spec, set_) -> None:
         if spec.strata_method != "quantile":
             raise InputError(f"`strata_method={spec.strata_method}` and `design=match` exclude "
                              "each other: the matched sets are the strata")
+
+
+def _check_followup(spec, set_) -> None:
+    """The follow-up fields, and what they do not (yet) combine with."""
+    for name in ("time", "person_time"):
+        value = getattr(spec, name)
+        if value is not None and (not isinstance(value, str) or not value):
+            raise InputError(f"`{name}` names a column of the data file; got {value!r}")
+    if spec.time is not None and spec.person_time is not None:
+        raise InputError("`time` and `person_time` exclude each other: `time` makes the outcome an "
+                         "event indicator (time to event), `person_time` an event count (rate)")
+    if spec.horizon is not None:
+        if spec.time is None:
+            raise InputError("`horizon` needs `time`: it is the follow-up time at which the "
+                             "time-to-event headline is read")
+        try:
+            horizon = float(spec.horizon)
+        except (TypeError, ValueError):
+            horizon = math.nan
+        if isinstance(spec.horizon, bool) or not (math.isfinite(horizon) and horizon > 0):
+            raise InputError(f"`horizon` must be a positive number in the units of the `time` "
+                             f"column; got {spec.horizon!r}")
+        set_(spec, "horizon", horizon)
+    column = spec.time if spec.time is not None else spec.person_time
+    if column is None:
+        return
+    flag = "time" if spec.time is not None else "person_time"
+    if column in (spec.exposure, spec.outcome):
+        raise InputError(f"`{flag}` '{column}' is also the exposure or the outcome; with `{flag}` "
+                         "the outcome is the event " + ("indicator" if flag == "time" else "count"))
+    refused = {"measure": spec.measure != "difference",
+               "statistic": spec.statistic not in ("adjusted", "difference"),
+               "outcome_type": spec.outcome_type != "auto",
+               "censoring_weights": spec.censoring_weights, "cluster": spec.cluster is not None,
+               "design": spec.design == "match"}
+    fixes = {"measure": "drop it (ratios are reported beside the difference)",
+             "statistic": "use adjusted (default) or difference",
+             "outcome_type": "drop it (the outcome type follows from `" + flag + "`)",
+             "censoring_weights": "drop it (censored follow-up is part of the outcome)",
+             "cluster": "drop it", "design": "use the default strata design"}
+    for name, bad in refused.items():
+        if bad:
+            value = getattr(spec, name)
+            raise InputError(f"`{name}={value}` is not available with `{flag}`; {fixes[name]}")
 
 
 #: Keys accepted in a TOML analysis file (the [analysis] table or the top level), mapped to fields.

@@ -29,6 +29,7 @@ from ..errors import DataWarning, InputError, MissingDataWarning
 from ._readers import read_table
 from . import _coding
 from . import _covariates as _design
+from . import _followup
 from . import _levels
 
 __all__ = ["read_table", "prepare", "observed_weights", "PreparedData", "BalanceTerm", "Flow"]
@@ -112,6 +113,8 @@ class PreparedData:
     n_linear: int | None = None
     #: how each continuous covariate entered (``SplineTerm``: spline with knots, or linear)
     forms: tuple = ()
+    #: follow-up time ("time-to-event") or person-time ("rate") of the analysed rows, else None
+    followup: np.ndarray | None = None
 
     def to_dict(self) -> dict:
         """JSON-ready summary (no per-row arrays)."""
@@ -133,7 +136,7 @@ class PreparedData:
 def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome_type="auto",
             formula=None, missing="drop", strata_column=None, negative_control=None,
             outcome_event=None, censoring_weights=False, pool_rare_levels=False,
-            terms="spline", cluster=None) -> PreparedData:
+            terms="spline", cluster=None, time=None, person_time=None) -> PreparedData:
     """Check and code the analysed columns of ``table``.
 
     Parameters
@@ -174,6 +177,11 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     cluster : str, optional
         The cluster column (checked by the caller): it joins the canonical sort key, so rows
         tied on every analysed column keep their clusters whatever the input order.
+    time, person_time : str, optional
+        A follow-up column (at most one; see :mod:`._followup`). With ``time`` the outcome is
+        the 0/1 event indicator and ``outcome_type`` becomes "time-to-event"; with
+        ``person_time`` it is an event count and ``outcome_type`` becomes "rate". The column's
+        values for the analysed rows are ``PreparedData.followup``.
 
     Returns
     -------
@@ -199,8 +207,9 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
         raise InputError(f"`outcome_type` must be auto, binary or continuous, got {outcome_type!r}")
     covariates = _covariate_list(table, covariates, formula)
     formula = _design.clean_formula(formula)
+    follow_col, follow_arg, follow_type = _followup.followup_column(time, person_time)
     names = {"exposure": exposure, "outcome": outcome, "strata_column": strata_column,
-             "negative_control": negative_control}
+             "negative_control": negative_control, follow_arg: follow_col}
     for arg, col in names.items():
         if col is not None:
             _need(table, col, arg)
@@ -209,7 +218,8 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
             raise InputError(f"`covariates` includes '{col}', which is the {'exposure' if col == exposure else 'outcome'}; remove it")
     if exposure == outcome:
         raise InputError(f"`exposure` and `outcome` are the same column '{exposure}'; choose two different columns")
-    for arg, col in (("strata_column", strata_column), ("negative_control", negative_control)):
+    for arg, col in (("strata_column", strata_column), ("negative_control", negative_control),
+                     (follow_arg, follow_col)):
         if col is not None and col in (exposure, outcome, *covariates):
             raise InputError(f"`{arg}` '{col}' is also the exposure, outcome or a covariate; choose another column")
     if negative_control is not None and not pd.api.types.is_numeric_dtype(table[negative_control]):
@@ -219,7 +229,10 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
                       ("negative_control", [negative_control] if negative_control else [])):
         for col in cols:
             _check_column_type(table[col], col, arg)
-    _warn_time_to_event(table, outcome)
+    if follow_col is None:
+        _warn_time_to_event(table, outcome)
+    else:
+        _followup.check_followup_column(table, follow_col, follow_arg)
 
     n_read = len(table)
     ex = table[exposure]
@@ -252,7 +265,8 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
 
     # Candidate rows: everything known except possibly the outcome (they feed the censoring model).
     cand_mask = ~np.logical_or.reduce([miss[c] for c in drop_cols if c != outcome])
-    cols = list(dict.fromkeys([exposure, outcome, *covariates, *(c for c in (strata_column, negative_control) if c)]))
+    cols = list(dict.fromkeys([exposure, outcome, *covariates,
+                               *(c for c in (strata_column, negative_control, follow_col) if c)]))
     extra = [cluster] if cluster is not None and cluster not in cols else []
     cand = table.loc[cand_mask, cols + extra].copy()
     cand["__row__"] = np.flatnonzero(cand_mask)
@@ -282,7 +296,13 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
         only = "exposed" if n1 else "reference"
         raise InputError(f"`exposure` '{exposure}': after dropping rows with missing values only the {only} "
                          f"group ({levels[only]}) remains ({len(t)} rows); check the missing values")
-    y, out_type, out_levels = _coding.code_outcome(work[outcome], outcome, outcome_type, outcome_event)
+    followup = None
+    if follow_type is None:
+        y, out_type, out_levels = _coding.code_outcome(work[outcome], outcome, outcome_type,
+                                                       outcome_event)
+    else:
+        y, out_type, out_levels, followup = _code_followup(work, outcome, outcome_event,
+                                                           follow_col, follow_type)
     if out_type == "binary" and len(set(zip(y.tolist(), t.tolist()))) == 2:
         raise InputError(f"`outcome` column '{outcome}' is the exposure recoded (its two values match "
                          "the groups exactly); choose the outcome column")
@@ -308,7 +328,21 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
         outcome=outcome, formula=formula_used, reference_levels=design.reference_levels,
         dropped_design_columns=design.dropped, strata_levels=strata_levels,
         row_ids=work["__row__"].to_numpy().astype(np.int64), n_linear=design.n_linear,
-        forms=design.forms)
+        forms=design.forms, followup=followup)
+
+
+def _code_followup(work, outcome, outcome_event, follow_col, follow_type):
+    """``(y, outcome type, outcome levels, follow-up)`` of a time-to-event or rate outcome."""
+    followup = work[follow_col].to_numpy(dtype=np.float64)
+    if follow_type == "time-to-event":
+        y, levels = _followup.code_event(work[outcome], outcome, outcome_event)
+        return y, follow_type, levels, followup
+    if outcome_event is not None:
+        raise InputError("`outcome_event` names the event value of an indicator; with "
+                         "`person_time` the outcome is a count: drop `outcome_event`")
+    y = _followup.code_count(work[outcome], outcome)
+    _followup.check_one_person_per_row(y, followup, follow_col, outcome)
+    return y, follow_type, None, followup
 
 
 def exposure_score_all_rows(X, t) -> np.ndarray | None:
