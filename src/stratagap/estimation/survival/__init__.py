@@ -12,7 +12,7 @@
 from ._curves import CombinedCurves, Curve, combine_curves, kaplan_meier, restricted_mean
 from .horizon import Horizon, censoring_difference, choose_horizon
 from .risk_difference import RiskDifference, adjusted_risk_difference
-from .secondary import (HazardRatio, RestrictedMean, crude_risk_difference, hazard_ratio,
+from .secondary import (HazardRatio, plain_risk_difference, RestrictedMean, crude_risk_difference, hazard_ratio,
                         rmst_difference, stratum_hazard_ratios)
 from .weighted import (ip_weights, pooled_logistic_risks, weighted_km_risks,
                        weighting_cross_checks)
@@ -20,5 +20,5 @@ from .weighted import (ip_weights, pooled_logistic_risks, weighted_km_risks,
 __all__ = ["Curve", "CombinedCurves", "kaplan_meier", "restricted_mean", "combine_curves",
            "Horizon", "choose_horizon", "censoring_difference", "RiskDifference",
            "adjusted_risk_difference", "HazardRatio", "RestrictedMean", "hazard_ratio",
-           "rmst_difference", "stratum_hazard_ratios", "crude_risk_difference", "ip_weights",
+           "rmst_difference", "stratum_hazard_ratios", "plain_risk_difference", "crude_risk_difference", "ip_weights",
            "weighted_km_risks", "pooled_logistic_risks", "weighting_cross_checks"]

@@ -57,14 +57,19 @@ def bootstrap_generators(seed: int, label: str, n_resamples: int):
     return [np.random.default_rng(c) for c in root.spawn(-(-n_resamples // BLOCK))]
 
 
-def _survival_cox(time, event, X, target, horizon):
-    """Mean predicted S(H | x) over ``target`` rows, or None when the Cox fit is not usable."""
+def _survival_cox(time, event, X, target, horizon, start=None):
+    """Mean predicted S(H | x) over ``target`` rows and the coefficients, or None.
+
+    ``start``: starting values of the Newton iterations (the full-sample fit, in the bootstrap;
+    the maximum does not depend on them).
+    """
     from statsmodels.duration.hazard_regression import PHReg
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            beta = np.asarray(PHReg(time, X, status=event, ties="breslow").fit().params)
+            model = PHReg(time, X, status=event, ties="breslow")
+            beta = np.asarray(model.fit(start_params=start).params)
         except (np.linalg.LinAlgError, ValueError):
             return None
     if not np.all(np.isfinite(beta)) or any("converge" in str(w.message).lower() for w in caught):
@@ -79,17 +84,18 @@ def _survival_cox(time, event, X, target, horizon):
     uniq, first = np.unique(ts, return_index=True)
     d = np.add.reduceat(es, first)
     cum0 = float(np.sum(np.where((d > 0) & (uniq <= horizon), d / at_risk[first], 0.0)))  # Breslow 1972
-    return float(np.mean(np.exp(-cum0 * np.exp(target @ beta - shift))))
+    return float(np.mean(np.exp(-cum0 * np.exp(target @ beta - shift)))), beta
 
 
 def _varying(X):
     return np.flatnonzero(np.ptp(X, axis=0) > 0) if X.shape[0] else np.zeros(0, int)
 
 
-def _stratum_risks(time, event, t, X, codes, S, estimand, horizon, cells):
-    """(S, 2) survival at H (exposed, reference) and the model used per stratum-group."""
+def _stratum_risks(time, event, t, X, codes, S, estimand, horizon, cells, starts=None):
+    """(S, 2) survival at H (exposed, reference), the model used and the Cox coefficients."""
     surv = np.full((S, 2), np.nan)
     models = [["", ""] for _ in range(S)]
+    betas = {}
     for s in range(S):
         in_s = codes == s
         target = X[in_s] if estimand == "ate" else X[in_s & (t == 1)]
@@ -99,14 +105,19 @@ def _stratum_risks(time, event, t, X, codes, S, estimand, horizon, cells):
             cols = _varying(X[rows])
             value = None
             if cols.size and ee.sum() >= EVENTS_PER_COLUMN * cols.size:
-                value = _survival_cox(tt, ee, X[rows][:, cols], target[:, cols], horizon)
+                start = None if starts is None else starts.get((s, j))
+                start = start if start is not None and start.size == cols.size else None
+                fitted = _survival_cox(tt, ee, X[rows][:, cols], target[:, cols], horizon,
+                                       start)
+                if fitted is not None:
+                    value, betas[(s, j)] = fitted
             if value is None:
                 value = float(kaplan_meier(tt, ee).at(horizon)[0])
                 models[s][j] = "kaplan-meier"
             else:
                 models[s][j] = "cox"
             surv[s, j] = value
-    return surv, models
+    return surv, models, betas
 
 
 @dataclass(frozen=True)
@@ -164,19 +175,21 @@ def adjusted_risk_difference(time, event, t, X, codes, weights, horizon, *, esti
     X = np.asarray(X, float).reshape(time.size, -1)
     S = len(weights)
     cells = [[np.flatnonzero((codes == s) & (t == g)) for g in (1, 0)] for s in range(S)]
-    surv, models = _stratum_risks(time, event, t, X, codes, S, estimand, horizon, cells)
+    surv, models, betas = _stratum_risks(time, event, t, X, codes, S, estimand, horizon, cells)
     est, r1, r0 = _combine(surv, weights)
     draws = np.full((bootstrap, 3), np.nan)  # risk difference, risk exposed, risk reference
+    per_draws = np.full((bootstrap, S), np.nan)  # stratum risk differences
     done = 0
     for block, gen in enumerate(bootstrap_generators(seed, "survival-bootstrap", bootstrap)):
         size = min(BLOCK, bootstrap - block * BLOCK)
         picks = [[gen.integers(0, c.size, size=(size, c.size)) for c in pair] for pair in cells]
         for b in range(size):
             rows = np.concatenate([cells[s][j][picks[s][j][b]] for s in range(S) for j in (0, 1)])
-            bsurv, _ = _stratum_risks(time[rows], event[rows], t[rows], X[rows], codes[rows], S,
-                                      estimand, horizon,
-                                      _cells_of(codes[rows], t[rows], S))
+            bsurv, _, _ = _stratum_risks(time[rows], event[rows], t[rows], X[rows], codes[rows],
+                                         S, estimand, horizon,
+                                         _cells_of(codes[rows], t[rows], S), betas)
             draws[block * BLOCK + b] = _combine(bsurv, weights)
+            per_draws[block * BLOCK + b] = bsurv[:, 1] - bsurv[:, 0]
             done += 1
         if progress is not None:
             progress(done, bootstrap)
@@ -191,9 +204,14 @@ def adjusted_risk_difference(time, event, t, X, codes, weights, horizon, *, esti
     ratio = {"estimate": rr, "se_log": se_log,
              "ci_low": rr * np.exp(-z * se_log) if np.isfinite(se_log) else np.nan,
              "ci_high": rr * np.exp(z * se_log) if np.isfinite(se_log) else np.nan}
+    per_se = np.std(per_draws, axis=0, ddof=1) if bootstrap > 1 else np.full(S, np.nan)
     per = [{"stratum": s + 1, "weight": float(weights[s]),
+            "n_exposed": int(cells[s][0].size), "n_reference": int(cells[s][1].size),
+            "estimate": float(surv[s, 1] - surv[s, 0]), "se": float(per_se[s]),
+            "ci_low": float(surv[s, 1] - surv[s, 0] - z * per_se[s]),
+            "ci_high": float(surv[s, 1] - surv[s, 0] + z * per_se[s]),
+            "measure": "risk difference",
             "risk_exposed": float(1 - surv[s, 0]), "risk_reference": float(1 - surv[s, 1]),
-            "difference": float(surv[s, 1] - surv[s, 0]),
             "model_exposed": models[s][0], "model_reference": models[s][1],
             "events_exposed": int(event[cells[s][0]].sum()),
             "events_reference": int(event[cells[s][1]].sum())} for s in range(S)]

@@ -34,7 +34,7 @@ from scipy import stats
 from ..._base.jsonable import jsonable
 from ._curves import kaplan_meier, restricted_mean
 
-__all__ = ["RestrictedMean", "HazardRatio", "rmst_difference", "hazard_ratio",
+__all__ = ["plain_risk_difference", "RestrictedMean", "HazardRatio", "rmst_difference", "hazard_ratio",
            "stratum_hazard_ratios", "crude_risk_difference"]
 
 
@@ -157,3 +157,21 @@ def crude_risk_difference(time, event, t, horizon, *, alpha=0.05) -> dict:
     z = float(stats.norm.isf(alpha / 2))
     return {"estimate": est, "se": se, "ci_low": est - z * se, "ci_high": est + z * se,
             "risk_exposed": parts["exposed"][0], "risk_reference": parts["reference"][0]}
+
+
+def plain_risk_difference(time, event, t, codes, weights, horizon, *, alpha=0.05) -> dict:
+    """Estimand-weighted stratum Kaplan-Meier risk difference (unadjusted within strata).
+
+    ``Var = sum_s w_s^2 (Greenwood_1s + Greenwood_0s)``; it carries the confounding left within
+    the strata of the score and is reported beside the headline, never as it.
+    """
+    est, var = 0.0, 0.0
+    for s in range(len(weights)):
+        for g, sign in ((1, 1.0), (0, -1.0)):
+            rows = (codes == s) & (t == g)
+            sv, vv = kaplan_meier(time[rows], event[rows]).at(horizon)
+            est += sign * weights[s] * (1.0 - float(sv))
+            var += weights[s] ** 2 * float(vv)
+    se = math.sqrt(var)
+    z = float(stats.norm.isf(alpha / 2))
+    return {"estimate": est, "se": se, "ci_low": est - z * se, "ci_high": est + z * se}

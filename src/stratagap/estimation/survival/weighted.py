@@ -165,13 +165,13 @@ def weighting_cross_checks(time, event, t, X, score, horizon, *, estimand, popul
         est = r1 - r0
         se = float(np.std(draws[key], ddof=1)) if len(draws[key]) > 1 else math.nan
         rows.append(CrossCheckRow(method=names[key], estimate=est, se=se, ci_low=est - z * se,
-                                  ci_high=est + z * se, measure="risk_difference",
+                                  ci_high=est + z * se, measure="difference",
                                   se_scale="difference", estimand=estimand.upper(),
                                   estimand_kind="marginal", population=population, mu1=r1,
                                   mu0=r0, se_method=se_method,
                                   details={"horizon": float(horizon)}))
     return CrossCheckResult(rows=tuple(rows), weights=None, estimand=estimand.upper(),
-                            measure="risk_difference", outcome_type="time-to-event",
+                            measure="difference", outcome_type="time-to-event",
                             alpha=alpha, score_source="the analysis's propensity score; "
                             "main-terms logistic refit on each bootstrap resample",
                             notes=(f"risk difference at the horizon {horizon:g}",))
