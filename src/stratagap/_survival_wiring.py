@@ -43,6 +43,7 @@ class SurvivalBlock:
     """The ``followup`` block of results.json for a time-to-event outcome."""
 
     outcome_type: str
+    time_column: str
     horizon: dict
     scores: dict
     events_by_group: dict
@@ -149,7 +150,7 @@ def survival_parts(ctx) -> dict:
     grid = np.linspace(0.0, H, CURVE_POINTS + 1)
     curves = _surv.combine_curves(time, event, t, codes, weights, grid, alpha=spec.alpha)
     block = SurvivalBlock(
-        outcome_type="time-to-event", horizon=horizon.to_dict(), scores=scores.to_dict(),
+        outcome_type="time-to-event", time_column=spec.time, horizon=horizon.to_dict(), scores=scores.to_dict(),
         events_by_group={k: int(v) for k, v in _by_group(event, t).items()},
         person_time_by_group=_by_group(time, t), censoring=censoring,
         risk_ratio=risk_ratio.to_dict(), rmst_difference=rmst.to_dict(),
