@@ -5,6 +5,7 @@ from __future__ import annotations
 import textwrap
 
 from .formatting import describe_terms, format_number as _n, format_p as _p
+from ._followup_summary import followup_lines
 from .verdict import NOT_SIGNIFICANT, measure_code
 
 __all__ = ["render_summary"]
@@ -33,6 +34,7 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
         f"  adjusted {adj['measure']}: {_n(adj['estimate'])} "
         f"({level}% CI {_n(adj['ci_low'])} to {_n(adj['ci_high'])})",
     ]
+    lines.extend(followup_lines(data, width))  # time-to-event and rate outcomes only
     if data.get("matching"):
         m = data["matching"]
         left = ", ".join(f"{v} {k.replace('_', ' ')}" for k, v in m["unmatched_exposed"].items() if v)

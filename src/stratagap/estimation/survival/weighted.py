@@ -157,9 +157,10 @@ def weighting_cross_checks(time, event, t, X, score, horizon, *, estimand, popul
     se_method = (f"bootstrap of the whole procedure (score refitted), B = {bootstrap}, stream "
                  f"'survival-weighting-bootstrap'; {failed} resamples skipped (score fit failed)")
     rows = []
-    names = {"km": "IP-weighted Kaplan-Meier (Cole & Hernan 2004)",
-             "pooled": f"IP-weighted pooled logistic hazards, {n_intervals} intervals "
-                       "(terms a, k, k^2, a k, a k^2; What If sec. 17.4)"}
+    names = {"km": "IP-weighted Kaplan-Meier", "pooled": "IP-weighted pooled logistic"}
+    how = {"km": "weighted Kaplan-Meier of each group (Cole & Hernan 2004)",
+           "pooled": f"discrete hazards on {n_intervals} equal intervals to the horizon, terms "
+                     "a, k, k^2, a k, a k^2 (What If sec. 17.4), S = prod (1 - h_k)"}
     for key in ("km", "pooled"):
         r1, r0 = point[key]
         est = r1 - r0
@@ -169,7 +170,7 @@ def weighting_cross_checks(time, event, t, X, score, horizon, *, estimand, popul
                                   se_scale="difference", estimand=estimand.upper(),
                                   estimand_kind="marginal", population=population, mu1=r1,
                                   mu0=r0, se_method=se_method,
-                                  details={"horizon": float(horizon)}))
+                                  details={"horizon": float(horizon), "model": how[key]}))
     return CrossCheckResult(rows=tuple(rows), weights=None, estimand=estimand.upper(),
                             measure="difference", outcome_type="time-to-event",
                             alpha=alpha, score_source="the analysis's propensity score; "
