@@ -113,3 +113,13 @@ def test_bad_input():
         survival_scores(np.array([1.0, 0.0]), np.array([1.0, 0.0]), np.zeros(2, int))
     with pytest.raises(Exception, match="`event` must be 0"):
         survival_scores(np.array([1.0, 2.0]), np.array([2.0, 0.0]), np.zeros(2, int))
+
+
+def test_higher_hazard_in_exposed_gives_positive_exposed_sum():
+    # `--alternative greater` means higher risk in the exposed group: their scores are larger
+    time, event, t, X, labels = _data(n=600, seed=7)  # exposure multiplies the hazard by 1.5
+    for kind in ("martingale", "logrank"):
+        values = survival_scores(time, event, labels, X, kind=kind).values
+        res = stratified_test(values, t, labels, estimand="ate", alternative="greater",
+                              resamples=999, seed=1)
+        assert res.statistic > 0 and res.p_value < 0.05
