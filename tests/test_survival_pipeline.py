@@ -133,3 +133,13 @@ def test_cli_end_to_end_and_bad_horizon(tmp_path):
     bad = _cli(*base, "--horizon", "500", "--out", "bad", cwd=tmp_path)
     assert bad.returncode == 2 and "horizon" in bad.stderr and "Traceback" not in bad.stderr
     assert not any((tmp_path / "bad").rglob("*"))  # nothing written (the CLI may make the folder)
+
+
+def test_no_events_in_one_group_is_not_an_error():
+    d = cohort()
+    d.loc[d.grp == 1, "event"] = 0
+    with pytest.warns(Warning):
+        r = stratagap.analyze(d, **ARGS)
+    hr = r.to_dict()["adjusted"]["hazard_ratio"]
+    assert hr["estimate"] is None and hr["reason"] == "no events in the exposed group"
+    assert r.to_dict()["adjusted"]["estimate"] < 0  # no exposed event: exposed risk 0

@@ -68,7 +68,8 @@ def rmst_difference(time, event, t, codes, weights, horizon, *, alpha=0.05) -> R
     return RestrictedMean(estimate=m1 - m0, se=se, ci_low=m1 - m0 - z * se,
                           ci_high=m1 - m0 + z * se, mean_exposed=m1, mean_reference=m0,
                           horizon=float(horizon), alpha=alpha,
-                          method="Kaplan-Meier area to the horizon within stratum-groups, "
+                          method="Kaplan-Meier area to the horizon within stratum-groups (not "
+                                 "covariate-adjusted within strata), "
                                  "estimand weights; variance Klein & Moeschberger 2003 sec. 4.5")
 
 
