@@ -206,3 +206,21 @@ def test_crude_against_survfuncright():
         parts.append((1 - sf.surv_prob[k], sf.surv_prob_se[k]))
     assert c["estimate"] == pytest.approx(parts[0][0] - parts[1][0], abs=1e-12)
     assert c["se"] == pytest.approx(math.hypot(parts[0][1], parts[1][1]), abs=1e-12)
+
+
+def test_combined_curve_two_strata_weighted_greenwood():
+    time, event, t, X, codes = _data(seed=13)
+    w = np.array([0.3, 0.7])
+    grid = np.array([0.5, 1.0, 1.5])
+    cc = combine_curves(time, event, t, codes, w, grid)
+    s, v = np.zeros(3), np.zeros(3)
+    for k in (0, 1):
+        rows = (codes == k) & (t == 0)
+        sf = SurvfuncRight(time[rows], event[rows])  # statsmodels KM and Greenwood SE
+        idx = np.searchsorted(sf.surv_times, grid, side="right") - 1
+        s += w[k] * sf.surv_prob[idx]
+        v += w[k] ** 2 * sf.surv_prob_se[idx] ** 2
+    z = stats.norm.isf(0.025)
+    se = np.sqrt(v) / np.abs(s * np.log(s))  # delta method on log(-log S)
+    assert np.allclose(cc.surv["reference"], s, atol=1e-12)
+    assert np.allclose(cc.ci_low["reference"], s ** np.exp(z * se), atol=1e-10)
