@@ -12,8 +12,8 @@
 from ._curves import CombinedCurves, Curve, combine_curves, kaplan_meier, restricted_mean
 from .horizon import Horizon, censoring_difference, choose_horizon
 from .risk_difference import RiskDifference, adjusted_risk_difference
-from .secondary import (HazardRatio, plain_risk_difference, RestrictedMean, crude_risk_difference, hazard_ratio,
-                        rmst_difference, stratum_hazard_ratios)
+from .secondary import (HazardRatio, RestrictedMean, crude_risk_difference, hazard_ratio,
+                        plain_risk_difference, rmst_difference, stratum_hazard_ratios)
 from .weighted import (ip_weights, pooled_logistic_risks, weighted_km_risks,
                        weighting_cross_checks)
 
