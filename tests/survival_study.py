@@ -1,9 +1,10 @@
 """Simulation with known truth for time-to-event outcomes, through ``stratagap.analyze``.
 
 Scenario (invented): n = 400 units, covariates x1, x2 ~ N(0, 1) and x3 ~ Bernoulli(0.5);
-exposure logit = -0.3 + 0.8 x1 + 0.5 x2; exponential event times with hazard
-0.04 exp(0.5 x1 + 0.4 x2 + 0.3 x3 + beta a) (so the covariates confound: they raise both the
-chance of exposure and the hazard); censoring uniform on (6, 30); horizon 12 given.
+exposure logit = -0.3 + 0.6 x1 + 0.4 x2; exponential event times with hazard
+0.05 exp(0.5 x1 + 0.4 x2 + 0.3 x3 + beta a) (so the covariates confound: they raise both the
+chance of exposure and the hazard); censoring uniform on (10, 30), so every unit without an
+event is at risk at the horizon 8 (given).
 
 Truths (ATE, exact up to the Monte Carlo error of 2,000,000 covariate draws, about 1e-4): the
 risk difference at 12, ``E[S_0(12 | x) - S_1(12 | x)]`` with ``S_a(u | x) = exp(-lambda_a(x) u)``,
@@ -25,17 +26,17 @@ import warnings
 import numpy as np
 import pandas as pd
 
-N, HORIZON, BASE = 400, 12.0, 0.04
+N, HORIZON, BASE = 400, 8.0, 0.05
 COEF = np.array([0.5, 0.4, 0.3])
 
 
 def draw(seed: int, beta: float, n: int = N) -> pd.DataFrame:
     rng = np.random.default_rng([20261202, seed])
     x = np.column_stack([rng.normal(size=n), rng.normal(size=n), rng.integers(0, 2, n)])
-    a = (rng.random(n) < 1 / (1 + np.exp(-(-0.3 + 0.8 * x[:, 0] + 0.5 * x[:, 1])))).astype(int)
+    a = (rng.random(n) < 1 / (1 + np.exp(-(-0.3 + 0.6 * x[:, 0] + 0.4 * x[:, 1])))).astype(int)
     rate = BASE * np.exp(x @ COEF + beta * a)
     event_time = rng.exponential(1 / rate)
-    censor = rng.uniform(6, 30, n)
+    censor = rng.uniform(10, 30, n)
     return pd.DataFrame({"a": a, "x1": x[:, 0], "x2": x[:, 1], "x3": x[:, 2],
                          "time": np.minimum(event_time, censor),
                          "event": (event_time <= censor).astype(int)})

@@ -130,6 +130,7 @@ def test_cli_end_to_end_and_bad_horizon(tmp_path):
     html = (tmp_path / "out" / "report.html").read_text(encoding="utf-8")
     assert "Adjusted survival of the two groups" in html and "sg-stratum-hazard-ratios" in html
     assert (tmp_path / "out" / "figures" / "survival_curves.svg").exists()
+    assert "events: exposed" in html  # the participant flow gives events and person-time
     bad = _cli(*base, "--horizon", "500", "--out", "bad", cwd=tmp_path)
     assert bad.returncode == 2 and "horizon" in bad.stderr and "Traceback" not in bad.stderr
     assert not any((tmp_path / "bad").rglob("*"))  # nothing written (the CLI may make the folder)

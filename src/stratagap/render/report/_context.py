@@ -103,7 +103,8 @@ def build_context(view, figures: dict, *, compact: bool) -> dict:
     run = getattr(view, "run", None) or {}
     return {
         "compact": compact, "q": q, "source": source, "data": data, "level": level,
-        "alpha": alpha, "flow": data["flow"], "flow_steps": flow_steps(data["flow"], data.get("clusters")),
+        "alpha": alpha, "flow": data["flow"],
+        "flow_steps": flow_steps(data["flow"], data.get("clusters"), data.get("followup")),
         "clusters": data.get("clusters"),
         "warnings": data["warnings"], "overlap": data["overlap"],
         "propensity": data["propensity"], "balance": data["balance"],
