@@ -224,3 +224,21 @@ def test_combined_curve_two_strata_weighted_greenwood():
     se = np.sqrt(v) / np.abs(s * np.log(s))  # delta method on log(-log S)
     assert np.allclose(cc.surv["reference"], s, atol=1e-12)
     assert np.allclose(cc.ci_low["reference"], s ** np.exp(z * se), atol=1e-10)
+
+
+def test_events_per_column_rule_is_pinned():
+    # Peduzzi et al. 1995 (about ten events per covariate): 2 columns need 20 events per group
+    from stratagap.estimation.survival.risk_difference import EVENTS_PER_COLUMN
+    assert EVENTS_PER_COLUMN == 10
+    rng = np.random.default_rng(21)
+    n = 120
+    X = rng.normal(size=(n, 2))
+    t = np.repeat([1, 0], n // 2).astype(np.int8)
+    time = rng.exponential(1.0, n) + 0.01
+    for events, model in ((20, "cox"), (19, "kaplan-meier")):
+        event = np.zeros(n)
+        event[:events] = 1  # exposed group: `events` events
+        event[n // 2:n // 2 + 30] = 1
+        rd = adjusted_risk_difference(time, event, t, X, np.zeros(n, np.int64),
+                                      np.array([1.0]), 0.8, estimand="ate", bootstrap=0)
+        assert rd.per_stratum[0]["model_exposed"] == model
