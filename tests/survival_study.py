@@ -88,8 +88,9 @@ if __name__ == "__main__":
     parser = argparse.ArgumentParser()
     parser.add_argument("--m", type=int, default=200)
     parser.add_argument("--beta", type=float, nargs="*", default=[0.5, 0.0])
+    parser.add_argument("--first-seed", type=int, default=0)
     args = parser.parse_args()
     for beta in args.beta:
         start = _time.time()
-        print(study(args.m, beta), f"{_time.time() - start:.0f} s", flush=True)
+        print(study(args.m, beta, args.first_seed), f"{_time.time() - start:.0f} s", flush=True)
     sys.exit(0)
