@@ -235,10 +235,32 @@ def test_events_per_column_rule_is_pinned():
     X = rng.normal(size=(n, 2))
     t = np.repeat([1, 0], n // 2).astype(np.int8)
     time = rng.exponential(1.0, n) + 0.01
-    for events, model in ((20, "cox"), (19, "kaplan-meier")):
+    # exposed 19 < 20: the stratum's model with an exposure term (49 >= 30 events); with 10
+    # reference events the stratum has 29 < 30: Kaplan-Meier
+    for events, ref, model in ((20, 30, "cox"), (19, 30, "cox with exposure term (stratum)"),
+                               (19, 10, "kaplan-meier")):
         event = np.zeros(n)
         event[:events] = 1  # exposed group: `events` events
-        event[n // 2:n // 2 + 30] = 1
+        event[n // 2:n // 2 + ref] = 1
         rd = adjusted_risk_difference(time, event, t, X, np.zeros(n, np.int64),
                                       np.array([1.0]), 0.8, estimand="ate", bootstrap=0)
         assert rd.per_stratum[0]["model_exposed"] == model
+
+
+def test_stratum_model_with_exposure_term_against_phreg():
+    rng = np.random.default_rng(22)
+    n = 120
+    X = rng.normal(size=(n, 2))
+    t = np.repeat([1, 0], n // 2).astype(np.int8)
+    time = rng.exponential(1.0, n) + 0.01
+    event = np.zeros(n)
+    event[:19] = 1
+    event[n // 2:n // 2 + 30] = 1
+    rd = adjusted_risk_difference(time, event, t, X, np.zeros(n, np.int64), np.array([1.0]),
+                                  0.8, estimand="ate", bootstrap=0)
+    Z = np.column_stack([t, X])
+    fit = PHReg(time, Z, status=event, ties="breslow").fit()  # statsmodels, Breslow baseline
+    times, cumhaz, _ = fit.baseline_cumulative_hazard[0]
+    lam = _through(times, cumhaz, 0.8)
+    expected = 1 - np.mean(np.exp(-lam * np.exp(np.column_stack([np.ones(n), X]) @ fit.params)))
+    assert rd.per_stratum[0]["risk_exposed"] == pytest.approx(expected, abs=1e-8)

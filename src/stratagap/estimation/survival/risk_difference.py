@@ -10,8 +10,10 @@ predictions are averaged (standardization; Hernan & Robins, What If, ch. 17; Aus
 
 Rule (common practice, no single source: about ten events per parameter, Peduzzi et al. 1995):
 a stratum-group gets its Cox model when it has at least ``EVENTS_PER_COLUMN`` events per
-covariate column (constant columns in it dropped) and the fit converges; otherwise its
-Kaplan-Meier ``S(H)``, recorded per stratum.
+covariate column (constant columns in it dropped) and the fit converges; otherwise the
+stratum's Cox model of exposure and the covariates (shared covariate effects and baseline,
+exposure as one term) when the stratum has that many events per column; otherwise the
+stratum-group's Kaplan-Meier ``S(H)``. The model used is recorded per stratum.
 
 Confidence interval: a bootstrap within stratum-groups (group sizes per stratum fixed, so the
 estimand weights are fixed), the whole within-stratum procedure repeated; ``B`` resamples from
@@ -91,6 +93,34 @@ def _varying(X):
     return np.flatnonzero(np.ptp(X, axis=0) > 0) if X.shape[0] else np.zeros(0, int)
 
 
+def _pooled_survival(time, event, t, X, in_s, target, g, horizon, cache, betas, starts, s):
+    """Mean S(H | x, a = g) from the stratum's Cox model of exposure and covariates, or None.
+
+    The fallback of a stratum-group without the events for its own model: both groups of the
+    stratum share the covariate effects and the baseline, exposure enters as one term. Fitted
+    when the stratum has ``EVENTS_PER_COLUMN`` events per column (covariates + exposure).
+    """
+    if "fit" not in cache:
+        cache["fit"] = None
+        rows = np.flatnonzero(in_s)
+        Z = np.column_stack([t[rows].astype(float), X[rows]])
+        cols = _varying(Z)
+        cache["cols"] = cols
+        if cols.size > 1 and cols[0] == 0 and event[rows].sum() >= EVENTS_PER_COLUMN * cols.size:
+            start = None if starts is None else starts.get((s, "pooled"))
+            start = start if start is not None and start.size == cols.size else None
+            cache["fit"] = (rows, Z[:, cols], start)
+    if cache["fit"] is None:
+        return None
+    rows, Z, start = cache["fit"]
+    aim = np.column_stack([np.full(target.shape[0], float(g)), target])[:, cache["cols"]]
+    fitted = _survival_cox(time[rows], event[rows], Z, aim, horizon, start)
+    if fitted is None:
+        return None
+    betas[(s, "pooled")] = fitted[1]
+    return fitted[0]
+
+
 def _stratum_risks(time, event, t, X, codes, S, estimand, horizon, cells, starts=None):
     """(S, 2) survival at H (exposed, reference), the model used and the Cox coefficients."""
     surv = np.full((S, 2), np.nan)
@@ -99,6 +129,7 @@ def _stratum_risks(time, event, t, X, codes, S, estimand, horizon, cells, starts
     for s in range(S):
         in_s = codes == s
         target = X[in_s] if estimand == "ate" else X[in_s & (t == 1)]
+        pooled = {}  # the stratum's Cox model with an exposure term, fitted when first needed
         for j, g in enumerate((1, 0)):
             rows = cells[s][j]
             tt, ee = time[rows], event[rows]
@@ -111,11 +142,14 @@ def _stratum_risks(time, event, t, X, codes, S, estimand, horizon, cells, starts
                                        start)
                 if fitted is not None:
                     value, betas[(s, j)] = fitted
+                    models[s][j] = "cox"
+            if value is None:
+                value = _pooled_survival(time, event, t, X, in_s, target, g, horizon, pooled,
+                                         betas, starts, s)
+                models[s][j] = "cox with exposure term (stratum)" if value is not None else ""
             if value is None:
                 value = float(kaplan_meier(tt, ee).at(horizon)[0])
                 models[s][j] = "kaplan-meier"
-            else:
-                models[s][j] = "cox"
             surv[s, j] = value
     return surv, models, betas
 
@@ -216,8 +250,9 @@ def adjusted_risk_difference(time, event, t, X, codes, weights, horizon, *, esti
             "events_exposed": int(event[cells[s][0]].sum()),
             "events_reference": int(event[cells[s][1]].sum())} for s in range(S)]
     rule = (f"within each stratum-group, a Cox model of the covariates (Breslow baseline) when "
-            f"it has at least {EVENTS_PER_COLUMN} events per covariate column, else its "
-            "Kaplan-Meier; predicted S(H) averaged over the stratum's "
+            f"it has at least {EVENTS_PER_COLUMN} events per covariate column, else the "
+            "stratum's Cox model with an exposure term when the stratum has them, else the "
+            "stratum-group's Kaplan-Meier; predicted S(H) averaged over the stratum's "
             f"{'units' if estimand == 'ate' else 'exposed units'}; estimand weights")
     boot = {"resamples": int(bootstrap), "seed": int(seed), "stream": "survival-bootstrap",
             "scheme": "rows resampled within stratum-groups; interval estimate +- z SE"}
