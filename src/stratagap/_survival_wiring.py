@@ -134,7 +134,8 @@ def survival_parts(ctx) -> dict:
 
     cross = _surv.weighting_cross_checks(time, event, t, X, ctx.propensity.score[ctx.used], H,
                                          estimand=spec.estimand, population=label,
-                                         alpha=spec.alpha, seed=spec.seed)
+                                         alpha=spec.alpha, seed=spec.seed,
+                                         progress=ctx.progress)
     cross = compare_with_headline(cross, adjusted)
     heterogeneity = heterogeneity_across_strata(rd.per_stratum, event, t, labels, binary=False)
     sensitivity = _sensitivity.sensitivity_analysis(

@@ -225,8 +225,8 @@ def adjusted_risk_difference(time, event, t, X, codes, weights, horizon, *, esti
             draws[block * BLOCK + b] = _combine(bsurv, weights)
             per_draws[block * BLOCK + b] = bsurv[:, 1] - bsurv[:, 0]
             done += 1
-        if progress is not None:
-            progress(done, bootstrap)
+            if progress is not None and (done % 10 == 0 or done == bootstrap):
+                progress(done, bootstrap)  # each resample refits up to 2S Cox models
     z = float(stats.norm.isf(alpha / 2))
     se = float(np.std(draws[:, 0], ddof=1)) if bootstrap > 1 else np.nan
     with np.errstate(divide="ignore", invalid="ignore"):

@@ -151,6 +151,8 @@ def weighting_cross_checks(time, event, t, X, score, horizon, *, estimand, popul
             r1, r0 = pooled_logistic_risks(time[r], event[r], tb, wb, horizon, n_intervals)
             draws["pooled"].append(r1 - r0)
             done += 1
+            if progress is not None and ((block * BLOCK + b + 1) % 10 == 0):
+                progress(block * BLOCK + b + 1, bootstrap)
         if progress is not None:
             progress(block * BLOCK + size, bootstrap)
     z = float(stats.norm.isf(alpha / 2))
