@@ -11,7 +11,6 @@ Cox models use the linear design (one column per covariate, ``X[:, :n_linear]``)
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 
 import numpy as np
