@@ -2,7 +2,8 @@
 
 The scenario and its truths are in tests/survival_study.py (invented; the covariates confound
 exposure and hazard; horizon 12). Here: the first m = 20 datasets of each arm, through
-``stratagap.analyze`` (about 8 s each on one core, so about 5 minutes). Bands (exact binomial,
+``stratagap.analyze`` (about 8 s each on one core; measured 6 minutes wall on a shared machine,
+coverage 90 % and rejection 0 % on these 20 + 20 datasets). Bands (exact binomial,
 tests/calibration/bands.py): coverage of the 95 % interval of the risk difference at the
 horizon inside [80 %, 100 %] (false alarm 0.26 % for a method at 95 %); rejection by the
 default test under the sharp null (beta = 0) inside [0 %, 20 %] (false alarm 0.26 % at 5 %,
