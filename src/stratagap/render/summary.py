@@ -6,6 +6,7 @@ import textwrap
 
 from .formatting import (describe_terms, format_number as _n, format_p as _p, format_risk,
                          is_risk_difference)
+from ._followup_summary import followup_lines
 from .rates_text import summary_lines as _rate_lines
 from .verdict import NOT_SIGNIFICANT, measure_code, not_significant_phrase
 
@@ -37,6 +38,7 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
                        initial_indent="    ", subsequent_indent="    "),
     ]
     lines.extend(_rate_lines(data))  # rate outcomes: per 1,000, rate ratio, events/person-time
+    lines.extend(followup_lines(data, width))  # time-to-event and rate outcomes only
     if data.get("matching"):
         m = data["matching"]
         left = ", ".join(f"{v} {k.replace('_', ' ')}" for k, v in m["unmatched_exposed"].items() if v)

@@ -25,6 +25,7 @@ from ._tipping import BENCHMARK_CAVEAT, TippingGrid, covariate_benchmarks, tippi
 from .analysis import Sensitivity, sensitivity_analysis
 from ._gamma_clusters import cluster_gamma_bounds
 from .negative_control import NegativeControl, negative_control_check
+from ._survival_evalue import hazard_ratio_e_value, hazard_ratio_to_risk_ratio, risk_ratio_e_value
 
 __all__ = [
     "e_value", "EValue", "RARE_OUTCOME_THRESHOLD",
@@ -32,4 +33,5 @@ __all__ = [
     "tipping_grid", "covariate_benchmarks", "TippingGrid", "BENCHMARK_CAVEAT",
     "headline_e_value", "pooled_sd", "sensitivity_analysis", "Sensitivity",
     "negative_control_check", "NegativeControl", "cluster_gamma_bounds",
+    "hazard_ratio_e_value", "hazard_ratio_to_risk_ratio", "risk_ratio_e_value",
 ]

@@ -51,7 +51,9 @@ def _test_rows(test):
 
 
 def _flow_steps(data):
-    steps = flow_steps(data["flow"], data.get("clusters"))
+    block = data.get("followup") or {}
+    survival = block if block.get("outcome_type") == "time-to-event" else None
+    steps = flow_steps(data["flow"], data.get("clusters"), survival)
     steps[-1]["detail"] += rate_flow_detail(data)  # rate outcomes: events and person-time
     return steps
 

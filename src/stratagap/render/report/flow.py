@@ -20,10 +20,11 @@ def _groups(counts: dict | None) -> str:
     return ", ".join(f"{k} {int(v):,}" for k, v in counts.items())
 
 
-def flow_steps(flow: dict, clusters: dict | None = None) -> list[dict]:
+def flow_steps(flow: dict, clusters: dict | None = None, followup: dict | None = None) -> list[dict]:
     """Main boxes, each with the exclusions that leave the flow after it.
 
-    With ``clusters`` (the result's ``clusters`` block) the boxes count clusters beside rows.
+    With ``clusters`` (the result's ``clusters`` block) the boxes count clusters beside rows;
+    with ``followup`` (a time-to-event block) the analysed box gives events and person-time.
 
     Returns
     -------
@@ -79,4 +80,9 @@ def flow_steps(flow: dict, clusters: dict | None = None) -> list[dict]:
             exits[0]["lines"].append(f"clusters: {_groups(trimmed_c)}")
         holding = "" if clusters["level"] == "cluster" else " (holding each group)"
         steps[-1]["detail"] += f"; clusters{holding}: {_groups(cf['clusters_analysed'])}"
+    if followup and followup.get("events_by_group"):
+        ev, pt = followup["events_by_group"], followup["person_time_by_group"]
+        steps[-1]["detail"] += (f"; events: exposed {int(ev['exposed']):,}, reference "
+                                f"{int(ev['reference']):,}; person-time: exposed "
+                                f"{pt['exposed']:,.1f}, reference {pt['reference']:,.1f}")
     return steps

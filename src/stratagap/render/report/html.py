@@ -23,6 +23,7 @@ from .figures_design import plot_balance, plot_overlap
 from .figures_inference import (plot_cross_checks, plot_null_distribution,
                                 plot_p_value_function, plot_stratum_effects)
 from .figures_sensitivity import plot_gamma_curve, plot_tipping
+from .figures_survival import has_survival_curves, plot_survival_curves
 
 __all__ = ["render_html", "write_report", "FIGURES", "CSP"]
 
@@ -50,6 +51,18 @@ FIGURES = (
 )
 
 
+#: Shown after the stratum effects for a time-to-event outcome only.
+SURVIVAL_FIGURE = ("survival_curves", plot_survival_curves, "Adjusted survival of the two "
+                   "groups to the horizon with pointwise bands, and the units still at risk.")
+
+
+def _figure_list(view) -> tuple:
+    if not has_survival_curves(view):
+        return FIGURES
+    at = [name for name, _f, _c in FIGURES].index("stratum_effects") + 1
+    return FIGURES[:at] + (SURVIVAL_FIGURE,) + FIGURES[at:]
+
+
 def _environment() -> jinja2.Environment:
     folder = resources.files("stratagap.render.report").joinpath("templates")
     env = jinja2.Environment(
@@ -63,7 +76,7 @@ def _environment() -> jinja2.Environment:
 def _figures(view, formats=("svg",), dpi=150) -> dict:
     """Render every figure once; returns name -> {"caption", formats...: bytes}."""
     out = {}
-    for number, (name, function, caption) in enumerate(FIGURES, start=1):
+    for number, (name, function, caption) in enumerate(_figure_list(view), start=1):
         fig = finish(function(view))  # laid out once, then frozen: each save would redo it
         entry = {"caption": f"Figure {number}. {caption}"}
         for fmt in formats:
@@ -79,6 +92,7 @@ def _render(view, figures, compact) -> str:
     context["css"] = resources.files("stratagap.render.report").joinpath(
         "templates", "report.css").read_text("utf-8")
     context["csp"] = CSP
+    context["followup"] = view.data.get("followup")  # time-to-event or rate block, or None
     return _environment().get_template("report.html").render(**context)
 
 
