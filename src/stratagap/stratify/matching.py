@@ -8,7 +8,8 @@ covers every exposed slot it can (the largest number of matched pairs), then has
 total logit distance.
 
 Optimality comes from one minimum-weight full bipartite matching
-(:func:`scipy.sparse.csgraph.min_weight_full_bipartite_matching`) per group of equal values:
+(:func:`scipy.sparse.csgraph.min_weight_full_bipartite_matching`) per connected piece of the
+caliper graph within each group of equal values (built and solved in ``_caliper_graph.py``):
 
 * rows are exposed slots (each exposed unit repeated K times), columns the reference units plus
   one private "unmatched" column per slot;
