@@ -20,8 +20,8 @@ import pytest
 
 import statsmodels.api as sm  # a hard dependency; causaldata is in the test extras
 
+from _what_if_design import what_if_covariates
 from stratagap.estimation import effects
-from stratagap.errors import ModelWarning
 
 
 @pytest.fixture(scope="module")
@@ -30,15 +30,7 @@ def nhefs():
 
     d = source.load_pandas().data
     d = d[d["wt82_71"].notna()].reset_index(drop=True)
-    num = pd.DataFrame({
-        "sex": d["sex"].cat.codes, "race": d["race"].cat.codes,
-        "age": d["age"], "age2": d["age"] ** 2,
-        "smokeintensity": d["smokeintensity"], "smokeintensity2": d["smokeintensity"] ** 2,
-        "smokeyrs": d["smokeyrs"], "smokeyrs2": d["smokeyrs"] ** 2,
-        "wt71": d["wt71"], "wt712": d["wt71"] ** 2}).astype(float)
-    dummies = pd.get_dummies(d[["education", "exercise", "active"]].astype(str),
-                             drop_first=True).astype(float)
-    X = pd.concat([num, dummies], axis=1)
+    X = what_if_covariates(d)
     t = d["qsmk"].to_numpy().astype(np.int8)
     y = d["wt82_71"].to_numpy(dtype=float)
     design = sm.add_constant(X)

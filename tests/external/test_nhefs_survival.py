@@ -14,11 +14,11 @@ recalled values to 0.2 percentage points (measured: 76.17 / 82.01 % and 80.67 / 
 """
 
 import numpy as np
-import pandas as pd
 import pytest
 import statsmodels.api as sm
 from statsmodels.duration.survfunc import SurvfuncRight
 
+from _what_if_design import what_if_covariates
 from stratagap.estimation.survival import (ip_weights, kaplan_meier, pooled_logistic_risks,
                                            weighted_km_risks)
 from stratagap.estimation.survival.weighted import interval_counts
@@ -30,15 +30,7 @@ def nhefs():
 
     d = source.load_pandas().data
     time = np.where(d["death"] == 1, (d["yrdth"] - 83) * 12 + d["modth"], 120).astype(float)
-    num = pd.DataFrame({
-        "sex": d["sex"].cat.codes, "race": d["race"].cat.codes,
-        "age": d["age"], "age2": d["age"] ** 2,
-        "smokeintensity": d["smokeintensity"], "smokeintensity2": d["smokeintensity"] ** 2,
-        "smokeyrs": d["smokeyrs"], "smokeyrs2": d["smokeyrs"] ** 2,
-        "wt71": d["wt71"], "wt712": d["wt71"] ** 2}).astype(float)
-    dummies = pd.get_dummies(d[["education", "exercise", "active"]].astype(str),
-                             drop_first=True).astype(float)
-    design = sm.add_constant(pd.concat([num, dummies], axis=1))
+    design = sm.add_constant(what_if_covariates(d))
     t = d["qsmk"].to_numpy().astype(np.int8)
     score = sm.GLM(t, design, family=sm.families.Binomial()).fit().predict(design).to_numpy()
     return {"time": time, "event": d["death"].to_numpy(float), "t": t, "score": score}
