@@ -88,6 +88,22 @@ def test_demo_runs_twice_in_its_own_folder(tmp_path, monkeypatch, capsys):
     assert truth["n"] > 700
 
 
+def test_demo_sick_leave_study_shows_an_adjusted_survival_curve(tmp_path, monkeypatch, capsys):
+    """Issue 13's done-when: the demo runs the time-to-event study end to end."""
+    monkeypatch.chdir(tmp_path)
+    assert main(["demo", "--study", "sick-leave", "--n", "600"]) == 0
+    printed = capsys.readouterr().out
+    folder = tmp_path / "stratagap-demo-sick-leave"
+    result = json.loads((folder / "results.json").read_text())
+    truth = json.loads((folder / "truth.json").read_text())
+    assert result["question"]["outcome_type"] == "time-to-event"
+    assert truth["horizon"] == result["adjusted"]["horizon"] and 0 < truth["ate"] < 0.5
+    assert "TRUE effect (invented data, ATE at time" in printed
+    assert (folder / "figures" / "survival_curves.svg").is_file()
+    assert "survival_curves" in (folder / "report.html").read_text()
+    assert (folder / "sick_leave.csv").is_file() and not (folder / "shift_work.csv").exists()
+
+
 def test_real_subprocess_bad_input_exit_code(tmp_path):
     missing = tmp_path / "nope.csv"
     proc = subprocess.run([sys.executable, "-m", "stratagap.cli", "analyze", str(missing), *ARGS],

@@ -22,6 +22,8 @@ from .errors import InputError
 __all__ = ["main"]
 
 DEMO_FOLDER = "stratagap-demo"
+#: The demo's two invented studies of the same staff: default output folder of each.
+DEMO_STUDIES = {"blood-pressure": DEMO_FOLDER, "sick-leave": "stratagap-demo-sick-leave"}
 
 
 class _Parser(argparse.ArgumentParser):
@@ -154,7 +156,10 @@ def _build_parser() -> argparse.ArgumentParser:
     demo = sub.add_parser("demo", help="simulate the invented shift-work study and analyse it")
     demo.add_argument("--seed", default="2026", help="seed of the simulated data and the analysis")
     demo.add_argument("--n", default="3000", help="number of simulated staff (default 3000)")
-    _add_output_options(demo, default_out=DEMO_FOLDER)
+    demo.add_argument("--study", default="blood-pressure", choices=tuple(DEMO_STUDIES),
+                      help="blood-pressure (default: systolic pressure, a continuous outcome) or "
+                           "sick-leave (days to a first sick-leave spell, a time-to-event outcome)")
+    _add_output_options(demo, default_out=None)
     return parser
 
 
@@ -258,9 +263,7 @@ def _run_analyze(args) -> int:
 
 
 def _run_demo(args) -> int:
-    from .demo import DEMO_COVARIATES, make_shift_work_data, true_effects
     from .render.files import prepare_folder, write_atomic, write_result
-    from .pipeline import analyze
     from .spec import AnalysisSpec
 
     _check_format(args.format)
@@ -271,31 +274,63 @@ def _run_demo(args) -> int:
         raise InputError(f"`--n` must be a whole number from 200 to 1,000,000; got {args.n!r}") from None
     if not 200 <= n <= 1_000_000:
         raise InputError(f"`--n` must be a whole number from 200 to 1,000,000; got {n:,}")
-    folder = prepare_folder(args.out, overwrite=args.overwrite, demo=True)
-    data = make_shift_work_data(n=n, seed=seed)
-    public = data.drop(columns=["_true_effect"])
-    csv_path = folder / "shift_work.csv"
-    write_atomic(csv_path, public.to_csv(index=False))
+    folder = prepare_folder(args.out or DEMO_STUDIES[args.study], overwrite=args.overwrite,
+                            demo=True)
+    study = _demo_sick_leave if args.study == "sick-leave" else _demo_blood_pressure
     progress, bar = _progress(args.quiet)
-    source = {"file": csv_path.name, "sha256": _sha256(csv_path), "rows": int(len(public)),
-              "invented": True}
     try:
         with _warnings_in_summary_only():
-            result = analyze(public, exposure="shift", exposed_value="nights",
-                             outcome="systolic_bp", covariates=list(DEMO_COVARIATES),
-                             negative_control="hearing_db", seed=seed, progress=progress,
-                             source=source, command=args.command_line)
+            result, truth = study(n, seed, folder, progress, args.command_line)
     finally:
         if bar is not None:
             bar.close()
-    ids = public["staff_id"].to_numpy()[result.arrays["row_ids"][result.arrays["used"]]]
-    truth = true_effects(data, ids)
     write_result(result, folder)
     write_atomic(folder / "truth.json", __import__("json").dumps(truth, indent=2) + "\n")
     _print(result, args, truth=truth)
     if not args.quiet and args.format == "text":
         print(f"Files written to {folder}")
     return 0
+
+
+def _write_demo_data(public, folder, name):
+    """Write the simulated table beside the results; return its source record."""
+    from .render.files import write_atomic
+    csv_path = folder / name
+    write_atomic(csv_path, public.to_csv(index=False))
+    return {"file": csv_path.name, "sha256": _sha256(csv_path), "rows": int(len(public)),
+            "invented": True}
+
+
+def _analysed_ids(result, public):
+    return public["staff_id"].to_numpy()[result.arrays["row_ids"][result.arrays["used"]]]
+
+
+def _demo_blood_pressure(n, seed, folder, progress, command):
+    from .demo import DEMO_COVARIATES, make_shift_work_data, true_effects
+    from .pipeline import analyze
+
+    data = make_shift_work_data(n=n, seed=seed)
+    public = data.drop(columns=["_true_effect"])
+    source = _write_demo_data(public, folder, "shift_work.csv")
+    result = analyze(public, exposure="shift", exposed_value="nights", outcome="systolic_bp",
+                     covariates=list(DEMO_COVARIATES), negative_control="hearing_db", seed=seed,
+                     progress=progress, source=source, command=command)
+    return result, true_effects(data, _analysed_ids(result, public))
+
+
+def _demo_sick_leave(n, seed, folder, progress, command):
+    """Days to a first sick-leave spell: the headline is a risk difference at a horizon."""
+    from .demo import DEMO_COVARIATES, make_sick_leave_data, true_risk_difference
+    from .pipeline import analyze
+
+    data = make_sick_leave_data(n=n, seed=seed)
+    public = data.drop(columns=["_true_effect", "_hazard_days", "_hazard_nights"])
+    source = _write_demo_data(public, folder, "sick_leave.csv")
+    result = analyze(public, exposure="shift", exposed_value="nights", outcome="sick_leave",
+                     time="days_followed", covariates=list(DEMO_COVARIATES), seed=seed,
+                     progress=progress, source=source, command=command)
+    horizon = result.to_dict()["adjusted"]["horizon"]
+    return result, true_risk_difference(data, _analysed_ids(result, public), horizon)
 
 
 def _print(result, args, truth=None):

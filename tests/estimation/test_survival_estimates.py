@@ -264,3 +264,30 @@ def test_stratum_model_with_exposure_term_against_phreg():
     lam = _through(times, cumhaz, 0.8)
     expected = 1 - np.mean(np.exp(-lam * np.exp(np.column_stack([np.ones(n), X]) @ fit.params)))
     assert rd.per_stratum[0]["risk_exposed"] == pytest.approx(expected, abs=1e-8)
+
+
+def test_hazard_ratio_sandwich_matches_statsmodels_and_survives_early_censoring():
+    """The robust SE equals statsmodels PHReg's own (``fit(groups=arange)``) where that one is
+    defined, and stays finite when a unit is censored before its stratum's first event (where
+    statsmodels 0.15 returns NaN for every SE)."""
+    time, event, t, X, codes = _data(n=500, seed=21)
+    design = np.column_stack([t, X])
+    reference = PHReg(time, design, status=event, strata=codes, ties="breslow").fit(
+        groups=np.arange(t.size))
+    assert np.isfinite(reference.bse[0])
+    hr = hazard_ratio(time, event, t, X, codes)
+    assert hr.se_log == pytest.approx(reference.bse[0], rel=1e-10)
+    first_event = time[(codes == 0) & (event == 1)].min()
+    early = time.copy()
+    unit = np.flatnonzero((codes == 0) & (event == 0))[0]
+    early[unit] = first_event / 2  # censored before stratum 0's first event
+    broken = PHReg(early, design, status=event, strata=codes, ties="breslow").fit(
+        groups=np.arange(t.size))
+    assert not np.isfinite(broken.bse[0])  # the reason for our own sandwich
+    kept = hazard_ratio(early, event, t, X, codes)
+    assert kept.estimate is not None and math.isfinite(kept.se_log)
+    # dropping the unit that enters no risk set changes neither the fit nor the sandwich
+    keep = np.arange(t.size) != unit
+    dropped = hazard_ratio(early[keep], event[keep], t[keep], X[keep], codes[keep])
+    assert kept.se_log == pytest.approx(dropped.se_log, rel=1e-8)
+    assert kept.estimate == pytest.approx(dropped.estimate, rel=1e-10)

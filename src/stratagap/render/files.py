@@ -25,7 +25,8 @@ DEMO_MARKER = ".stratagap-demo"
 
 #: Every name this package may write into an output folder (the report adds figures/).
 OUTPUT_NAMES = ("results.json", "run.json", "balance.csv", "strata.csv", "report.html",
-                "baseline.csv", "baseline.md", "baseline.tex", "shift_work.csv", "truth.json",
+                "baseline.csv", "baseline.md", "baseline.tex", "shift_work.csv", "sick_leave.csv",
+                "truth.json",
                 "matched_sets.csv", "figures", DEMO_MARKER)
 
 

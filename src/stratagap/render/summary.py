@@ -48,8 +48,9 @@ def render_summary(data: dict, *, truth: dict | None = None, width: int = 88) ->
     lines.extend(_cluster_lines(data.get("clusters"), width))
     if truth is not None:
         key = q["estimand"].lower()
-        lines.append(f"  TRUE effect (invented data, {q['estimand']} in the analysed population): "
-                     f"{truth[key]:.2f}")
+        at = f" at time {_n(truth['horizon'])}" if "horizon" in truth else ""
+        lines.append(f"  TRUE effect (invented data, {q['estimand']}{at} in the analysed "
+                     f"population): {truth[key]:.2f}")
     lines.append(f"  permutation test ({test['statistic_kind']}, {test['null']}): "
                  f"p = {_p(test['p_value'])} [{test['engine']}, {test['resamples']} resamples]")
     sens = data["sensitivity"]

@@ -108,15 +108,31 @@ def hazard_ratio(time, event, t, X, codes, *, alpha=0.05) -> HazardRatio:
     design = np.column_stack([t.astype(float), np.asarray(X, float).reshape(t.size, -1)])
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        fit = PHReg(time, design, status=event, strata=codes, ties="breslow").fit(
-            groups=np.arange(t.size))  # each unit its own cluster: the robust sandwich
-    b, se = float(fit.params[0]), float(fit.bse[0])
+        model = PHReg(time, design, status=event, strata=codes, ties="breslow")
+        fit = model.fit()
+    b = float(fit.params[0])
+    se = _robust_se(model, fit)
     if not (math.isfinite(b) and math.isfinite(se)) or any(
             "converge" in str(w.message).lower() for w in caught):
         return _not_estimable("the stratified Cox model did not converge", alpha, method)
     z = float(stats.norm.isf(alpha / 2))
     return HazardRatio(math.exp(b), se, math.exp(b - z * se), math.exp(b + z * se), alpha,
                        method)
+
+
+def _robust_se(model, fit) -> float:
+    """Lin & Wei sandwich SE of the exposure coefficient, each unit its own cluster.
+
+    statsmodels' own robust covariance (``fit(groups=...)``) gives NaN as soon as one unit was
+    never at risk at an event time of its stratum (censored before the stratum's first event):
+    its score residual is NaN there, where it is 0 (it enters no risk set). So the sandwich is
+    formed here from the score residuals with those zeros, and the model-based inverse
+    information: ``V = I^-1 (sum_i r_i r_i') I^-1``.
+    """
+    resid = np.nan_to_num(model.score_residuals(fit.params), nan=0.0)
+    naive = np.asarray(fit.cov_params(), float)
+    robust = naive @ (resid.T @ resid) @ naive
+    return float(math.sqrt(robust[0, 0])) if robust[0, 0] >= 0 else float("nan")
 
 
 def stratum_hazard_ratios(time, event, t, codes, *, alpha=0.05) -> list:
