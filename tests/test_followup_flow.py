@@ -178,3 +178,11 @@ def test_time_to_event_flow_and_baseline_match_pandas_groupby():
     assert table.loc["Person-time (months)", "summary"] == "sum of 'months'"
     text = render_summary(d, width=200)
     assert "person-time (months): exposed" in text
+
+
+def test_rate_flow_counts_do_not_depend_on_the_row_order(rate):
+    data, res = rate
+    shuffled = data.sample(frac=1.0, random_state=7).reset_index(drop=True)
+    with pytest.warns(stratagap.StratagapWarning):
+        again = stratagap.analyze(shuffled, **RATE)
+    assert again.to_dict()["flow"] == res.to_dict()["flow"]

@@ -8,6 +8,8 @@ follow-up column itself travels beside ``y`` as ``PreparedData.followup``.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pandas as pd
 
@@ -153,7 +155,9 @@ def set_aside_totals(outcome: pd.Series, followup: pd.Series, group: np.ndarray,
     out = {"events": {}, "person_time": {}, "outcome_missing": {}}
     for name, code in (("exposed", 1), ("reference", 0)):
         mine = g == code
-        out["events"][name] = int(round(float(counts[mine & recorded].sum())))
-        out["person_time"][name] = float(time[mine].sum())
+        # exact sums (math.fsum): these rows are in input order, and the result must not
+        # depend on it
+        out["events"][name] = int(round(math.fsum(counts[mine & recorded])))
+        out["person_time"][name] = math.fsum(time[mine])
         out["outcome_missing"][name] = int(np.sum(mine & ~recorded))
     return out
