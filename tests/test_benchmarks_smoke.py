@@ -28,6 +28,6 @@ def test_quick_benchmark_runs_and_writes_the_table(tmp_path, capsys):
     assert "scipy.stats.permutation_test" in printed and "pandas shuffle loop" in printed
     text = out.read_text()
     for heading in ("## Machine", "## Targets", "## Engine: absolute times",
-                    "## Against the baselines", "## Whole analysis"):
+                    "## Against the baselines", "## Whole analysis", "## Rate outcomes (issue 13)"):
         assert heading in text
     assert "| 5,000 | 5 | continuous | mean_difference | 250 |" in text

@@ -143,7 +143,7 @@ def test_cli_runs_end_to_end_and_prints_the_rate_lines(tmp_path, data, capsys):
     assert "per 1,000 units of 'years'" in out and "Mantel-Haenszel rate ratio" in out
     assert "Not medical advice" in out
     html = (tmp_path / "out" / "report.html").read_text(encoding="utf-8")
-    assert "Person-time (years)" in html and "events exposed" in html
+    assert "Person-time (years)" in html and "events: exposed" in html
     assert path.read_bytes() == before
 
 

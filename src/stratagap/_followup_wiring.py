@@ -19,7 +19,7 @@ from . import sensitivity as _sensitivity
 from ._base.layout import StratumLayout
 from .spec import AnalysisSpec
 
-__all__ = ["FollowupContext", "followup_parts", "OUTCOME_FIELDS"]
+__all__ = ["FollowupContext", "followup_parts", "flow_by_step", "OUTCOME_FIELDS"]
 
 #: the AnalysisResult fields a follow-up outcome's wiring fills
 OUTCOME_FIELDS = ("tests", "crude", "adjusted", "plain", "constant_effect", "mantel_haenszel",
@@ -68,6 +68,37 @@ def followup_parts(ctx: FollowupContext) -> dict:
         raise RuntimeError(f"follow-up outcome stages left out {', '.join(missing)}")
     parts["negative_control"] = _negative_control(ctx)
     return parts
+
+
+def _totals(events, time, t, rows) -> dict:
+    """Events (whole numbers) and follow-up summed by group over the rows of a mask."""
+    out = {"events": {}, "person_time": {}}
+    for name, code in (("exposed", 1), ("reference", 0)):
+        mine = rows & (t == code)
+        out["events"][name] = int(round(float(events[mine].sum())))
+        out["person_time"][name] = float(time[mine].sum())
+    return out
+
+
+def flow_by_step(prepared, keep, used, column: str, matched: bool = False) -> dict:
+    """Events and person-time by group at each step of the participant flow.
+
+    ``keep`` (kept by the overlap rule) and ``used`` (indices of the analysed rows) refer to
+    the complete cases of ``prepared``; person-time is the sum of the follow-up column (the
+    follow-up time of a time-to-event outcome, the person-time of a rate), in its own unit.
+    The rows set aside for missing values come from the data stage, which saw them.
+    """
+    t, events, time = prepared.t, prepared.y, prepared.followup
+    keep = np.asarray(keep, dtype=bool)
+    analysed = np.zeros(t.size, dtype=bool)
+    analysed[np.asarray(used)] = True
+    return {"column": column,
+            "set_aside_missing": prepared.flow.followup_set_aside,
+            "complete_cases": _totals(events, time, t, np.ones(t.size, dtype=bool)),
+            "trimmed": _totals(events, time, t, ~keep),
+            "not_matched" if matched else "strata_set_aside": _totals(events, time, t,
+                                                                      keep & ~analysed),
+            "analysed": _totals(events, time, t, analysed)}
 
 
 def _negative_control(ctx: FollowupContext):

@@ -270,7 +270,11 @@ def _assemble(spec, prepared, design: dict, outcome_parts: dict, clock) -> dict:
                                        strata_set_aside_by_group=getattr(strata, "set_aside", {})
                                        if matching is None else {},
                                        t_analysed=t, not_matched_by_group=None
-                                       if matching is None else strata.set_aside)
+                                       if matching is None else strata.set_aside,
+                                       followup_by_step=None if prepared.followup is None
+                                       else _followup.flow_by_step(
+                                           prepared, keep, used, spec.time or spec.person_time,
+                                           matched=matching is not None))
     parts = dict(
         prepared_summary=_prepared_summary(prepared, used), flow=flow, propensity=propensity,
         overlap=overlap, strata=strata, balance=design["balance"], matching=matching,

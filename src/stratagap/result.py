@@ -110,10 +110,14 @@ class ParticipantFlow:
     analysed_by_group: dict
     rows_analysed: int
     not_matched_by_group: dict | None = None  # design=match: left out of the matched sets
+    #: time-to-event and rate outcomes: events and person-time by group at each step
+    #: (stratagap._followup_wiring.flow_by_step)
+    followup_by_step: dict | None = None
 
     @classmethod
     def from_stages(cls, counts, *, trimmed_by_group, strata_set_aside_by_group,
-                    t_analysed, not_matched_by_group=None) -> "ParticipantFlow":
+                    t_analysed, not_matched_by_group=None,
+                    followup_by_step=None) -> "ParticipantFlow":
         """``counts``: the data stage's Flow; ``t_analysed``: exposure of the analysed rows."""
         n1 = int(t_analysed.sum())
         return cls(**counts.to_dict(), trimmed_by_group=jsonable(dict(trimmed_by_group)),
@@ -121,10 +125,12 @@ class ParticipantFlow:
                    analysed_by_group={"exposed": n1, "reference": int(len(t_analysed) - n1)},
                    rows_analysed=int(len(t_analysed)),
                    not_matched_by_group=None if not_matched_by_group is None
-                   else jsonable(dict(not_matched_by_group)))
+                   else jsonable(dict(not_matched_by_group)),
+                   followup_by_step=None if followup_by_step is None
+                   else jsonable(followup_by_step))
 
     def to_dict(self) -> dict:
-        return fields_dict(self, optional=("not_matched_by_group",))
+        return fields_dict(self, optional=("not_matched_by_group", "followup_by_step"))
 
 
 @dataclass(frozen=True)

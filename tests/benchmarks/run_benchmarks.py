@@ -20,7 +20,12 @@ Prints, all measured in the same run on the same data:
 * the whole ``stratagap.analyze`` on 100k rows x 20 covariates with B resamples (in a child
   process: wall time, the wall and CPU time of each stage as the pipeline records them in
   ``run.json``, and peak resident memory above the child's baseline,
-  against the size of the input table).
+  against the size of the input table);
+* a rate outcome (events over person-time, ``person_time=``) on 100k rows x 20 covariates
+  with B resamples, against two baselines measured in the same child process on the same
+  table: the whole analysis of a continuous outcome (each person's own rate, events / person-
+  time, without ``person_time``), and one statsmodels Poisson GLM with a log person-time
+  offset of the exposure and the covariates (the unit cost of one model fit at this size).
 
 Not a test: no assertions (``tests/test_benchmarks_smoke.py`` runs ``--quick`` in the suite).
 """
@@ -97,6 +102,21 @@ def analysis_table(n, p, seed=0):
     frame["exposed"] = t
     frame["outcome"] = y
     return frame
+
+
+def rate_table(n, p, seed=0):
+    """:func:`analysis_table` plus follow-up (``years``, uniform 0.5 to 4) and an event count
+    (``events``, Poisson with mean years x rate; the rate rises with the confounders and is
+    1.35 times higher in the exposed) and each person's own rate ``own_rate``."""
+    frame = analysis_table(n, p, seed)
+    rng = np.random.default_rng(seed + 1)
+    q = min(6, p)
+    x = frame[[f"x{j:02d}" for j in range(q)]].to_numpy()
+    rate = 0.3 * np.exp(x @ np.full(q, 0.15) + np.log(1.35) * frame["exposed"].to_numpy())
+    frame["years"] = rng.uniform(0.5, 4.0, n)
+    frame["events"] = rng.poisson(frame["years"].to_numpy() * rate)
+    frame["own_rate"] = frame["events"] / frame["years"]
+    return frame.drop(columns="outcome")
 
 
 # ----------------------------------------------------------------------------- timing
@@ -235,6 +255,120 @@ def analyze_child(path, B):
                       "p_value": d["test"]["p_value"]}))
 
 
+def rate_child(path, B, repeats):
+    """Run in a child process: the rate analysis, the continuous analysis of each person's own
+    rate and one statsmodels Poisson GLM with offset, on the same table (after a warm-up),
+    ``repeats`` times in turn; each keeps its run of least CPU time (other sessions' load
+    inflates single runs unevenly)."""
+    import statsmodels.api as sm
+
+    import stratagap
+
+    frame = pd.read_pickle(path)
+    covs = [c for c in frame.columns if c.startswith("x")]
+    common = dict(exposure="exposed", covariates=covs, seed=1)
+    small = rate_table(1500, len(covs))
+    stratagap.analyze(small, outcome="events", person_time="years", resamples=100, **common)
+    stratagap.analyze(small, outcome="own_rate", resamples=100, **common)  # warm-ups
+
+    def clock(fn):
+        w0, c0 = time.perf_counter(), time.process_time()
+        out = fn()
+        return out, time.perf_counter() - w0, time.process_time() - c0
+
+    design = sm.add_constant(frame[["exposed", *covs]].to_numpy(dtype=float))
+    runs = {
+        "rate": lambda: stratagap.analyze(frame, outcome="events", person_time="years",
+                                          resamples=B, **common),
+        "continuous": lambda: stratagap.analyze(frame, outcome="own_rate", resamples=B,
+                                                **common),
+        "glm": lambda: sm.GLM(frame["events"].to_numpy(dtype=float), design,
+                              family=sm.families.Poisson(),
+                              offset=np.log(frame["years"].to_numpy())).fit()}
+    best, every = {}, {name: [] for name in runs}
+    for _ in range(repeats):
+        for name, fn in runs.items():
+            out, wall, cpu = clock(fn)
+            every[name].append(cpu)
+            if name not in best or cpu < best[name]["cpu_s"]:
+                best[name] = {"wall_s": wall, "cpu_s": cpu, **(
+                    {"stages": out.run["stages"]} if name != "glm" else {})}
+    for name, row in best.items():
+        row["all_cpu"] = every[name]
+    print(json.dumps({"n": len(frame), "p": len(covs), "resamples": B, "repeats": repeats,
+                      **best}))
+
+
+def rate_run(n, p, B, repeats=2):
+    """The rate-outcome row (see :func:`rate_child`); the child's BLAS runs one thread
+    (``OPENBLAS_NUM_THREADS=1``: spinning BLAS threads on a shared machine count as CPU time
+    and made the same score fit differ threefold between two runs)."""
+    with tempfile.TemporaryDirectory() as tmp:
+        path = os.path.join(tmp, "rates.pkl")
+        rate_table(n, p).to_pickle(path)
+        cmd = [sys.executable, os.path.abspath(__file__), "--rate-child", path, str(B),
+               str(repeats)]
+        env = {**os.environ, "OPENBLAS_NUM_THREADS": "1"}
+        out = subprocess.run(cmd, capture_output=True, text=True, env=env)
+    if out.returncode:
+        raise RuntimeError(f"rate child failed:\n{out.stderr[-3000:]}")
+    row = json.loads(out.stdout.strip().splitlines()[-1])
+    r, c, g = row["rate"], row["continuous"], row["glm"]
+    row["ratio_continuous_cpu"] = r["cpu_s"] / c["cpu_s"]
+    row["ratio_continuous_wall"] = r["wall_s"] / c["wall_s"]
+    row["ratio_glm_cpu"] = r["cpu_s"] / max(g["cpu_s"], 1e-9)
+    print(f"  rate outcome, {n:,} rows x {p} covariates, B={B:,}: {r['wall_s']:.1f} s "
+          f"({r['cpu_s']:.1f} s CPU); continuous outcome on the same table {c['wall_s']:.1f} s "
+          f"({c['cpu_s']:.1f} s CPU): {row['ratio_continuous_cpu']:.2f}x in CPU; one "
+          f"statsmodels Poisson GLM {g['wall_s']:.2f} s ({g['cpu_s']:.2f} s CPU): "
+          f"{row['ratio_glm_cpu']:.0f}x", flush=True)
+    for k, v in sorted(r["stages"].items(), key=lambda kv: -kv[1]["cpu"]):
+        base = c["stages"].get(k, {}).get("cpu")
+        print(f"      {k:<20} {v['wall']:6.2f} s wall {v['cpu']:6.2f} s CPU"
+              + ("" if base is None else f" (continuous {base:.2f} s CPU)"))
+    return row
+
+
+def rate_markdown(rr) -> list[str]:
+    """The rate-outcome section of docs/performance.md."""
+    r, c, g = rr["rate"], rr["continuous"], rr["glm"]
+    L = ["", "## Rate outcomes (issue 13)", "",
+         f"`stratagap.analyze(..., person_time=\"years\")` on {rr['n']:,} invented rows x "
+         f"{rr['p']} covariates (Poisson counts over uniform 0.5-4 years of follow-up), "
+         f"{rr['resamples']:,} resamples, against two baselines in the same child process on the "
+         "same table: the whole analysis of each person's own rate (events / years) as a "
+         "continuous outcome, and one statsmodels Poisson GLM with offset (exposure and the "
+         f"covariates). Each ran {rr['repeats']} times in turn, the run of least CPU time kept "
+         "(CPU seconds of every run: rate "
+         f"{', '.join(f'{x:.1f}' for x in r['all_cpu'])}; continuous "
+         f"{', '.join(f'{x:.1f}' for x in c['all_cpu'])}); BLAS on one thread "
+         "(`OPENBLAS_NUM_THREADS=1`), the permutation engine on every core.", "",
+         "| run | wall s | CPU s | rate analysis CPU / this CPU |", "| --- | ---: | ---: | ---: |",
+         f"| rate outcome (`person_time`) | {r['wall_s']:.1f} | {r['cpu_s']:.1f} | 1 |",
+         f"| continuous outcome, same table | {c['wall_s']:.1f} | {c['cpu_s']:.1f} | "
+         f"{rr['ratio_continuous_cpu']:.2f}x |",
+         f"| one statsmodels Poisson GLM | {g['wall_s']:.2f} | {g['cpu_s']:.2f} | "
+         f"{rr['ratio_glm_cpu']:.0f}x |", "",
+         "CPU seconds by stage (the pipeline's own clock; a rate outcome's test, effects, "
+         "cross-checks and sensitivity analysis are one stage, `followup`, compared with the "
+         "sum of those stages of the continuous run):", "",
+         "| stage | rate CPU s | continuous CPU s |", "| --- | ---: | ---: |",
+         f"| outcome stages (`followup`; continuous: {', '.join(OUTCOME_STAGES)}) | "
+         f"{r['stages'].get('followup', {}).get('cpu', 0.0):.2f} | "
+         f"{sum(c['stages'].get(k, {}).get('cpu', 0.0) for k in OUTCOME_STAGES):.2f} |"]
+    for k, v in sorted(r["stages"].items(), key=lambda kv: -kv[1]["cpu"]):
+        if k == "followup" or v["cpu"] < 0.005:
+            continue
+        base = c["stages"].get(k, {}).get("cpu")
+        L.append(f"| {k} | {v['cpu']:.2f} | {'' if base is None else f'{base:.2f}'} |")
+    return L
+
+
+#: the continuous pipeline's stages that a rate outcome runs inside its one `followup` stage
+OUTCOME_STAGES = ("tests", "effects", "cross_checks", "heterogeneity", "sensitivity",
+                  "negative_control")
+
+
 def analyze_run(n, p, B):
     with tempfile.TemporaryDirectory() as tmp:
         path = os.path.join(tmp, "table.pkl")
@@ -282,7 +416,7 @@ def matching_run(n1, n0, per_exposed=1, seed=0):
 
 
 # ----------------------------------------------------------------------------- report
-def markdown(info, rows, base, an, args, match=None) -> str:
+def markdown(info, rows, base, an, args, match=None, rates=None) -> str:
     ok = lambda flag: "met" if flag else "NOT met"  # noqa: E731
     big = max(r["n"] for r in rows)
     cont = next((r for r in rows if r["n"] == big and r["strata"] == 5
@@ -358,6 +492,8 @@ def markdown(info, rows, base, an, args, match=None) -> str:
               "| stage | wall s | CPU s |", "| --- | ---: | ---: |"]
         for k, v in sorted(an["stages"].items(), key=lambda kv: -kv[1]["wall"]):
             L.append(f"| {k} | {v['wall']:.2f} | {v['cpu']:.2f} |")
+    if rates:
+        L += rate_markdown(rates)
     L += ["", "## How the engine gets there", "", NOTES]
     return "\n".join(L) + "\n"
 
@@ -401,19 +537,28 @@ def main(argv=None):
     ap.add_argument("--skip-analyze", action="store_true")
     ap.add_argument("--matching-only", action="store_true",
                     help="only the matching rows (1:1 and 1:3), printed")
+    ap.add_argument("--rates-only", action="store_true",
+                    help="only the rate-outcome row (100,000 rows), printed")
     ap.add_argument("--analyze-child", nargs=2, help=argparse.SUPPRESS)
+    ap.add_argument("--rate-child", nargs=3, help=argparse.SUPPRESS)
     a = ap.parse_args(argv)
     if a.analyze_child:
         analyze_child(a.analyze_child[0], int(a.analyze_child[1]))
         return 0
+    if a.rate_child:
+        rate_child(a.rate_child[0], int(a.rate_child[1]), int(a.rate_child[2]))
+        return 0
     if a.quick:
         sizes, strata, B, Bb, big, an_size = [5000], [5], 250, 2, 5000, (1500, 4, 200)
-        match_size = (1000, 10_000)
+        match_size, rate_size = (1000, 10_000), (2000, 4, 200, 1)
     else:
         sizes, strata, B, Bb = [10_000, 100_000, 1_000_000], [5, 50], a.resamples, \
             a.baseline_resamples
         big, an_size = 1_000_000, (100_000, 20, a.resamples)
-        match_size = (100_000, 1_000_000)
+        match_size, rate_size = (100_000, 1_000_000), (100_000, 20, a.resamples, 2)
+    if a.rates_only:
+        rate_run(*rate_size)
+        return 0
     if a.matching_only:
         for k in (1, 3):
             matching_run(*match_size, per_exposed=k)
@@ -428,12 +573,14 @@ def main(argv=None):
     base = baselines(big, B, Bb, a.workers)
     print("matching:")
     match = [matching_run(*match_size, per_exposed=k) for k in (1, 3)]
-    an = None
+    an = rates = None
     if not a.skip_analyze:
         print("whole analysis:")
         an = analyze_run(*an_size)
+        print("rate outcome:")
+        rates = rate_run(*rate_size)
     if a.write:
-        text = markdown(info, rows, base, an, a, match)
+        text = markdown(info, rows, base, an, a, match, rates)
         tmp = a.write + ".tmp"
         with open(tmp, "w") as fh:
             fh.write(text)

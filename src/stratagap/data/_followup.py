@@ -8,6 +8,8 @@ follow-up column itself travels beside ``y`` as ``PreparedData.followup``.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pandas as pd
 
@@ -15,7 +17,7 @@ from ..errors import InputError
 from ._coding import _fmt, _same, _value_list
 
 __all__ = ["followup_column", "check_followup_column", "code_event", "code_count",
-           "AGGREGATE_RATIO", "AGGREGATE_EVENTS"]
+           "set_aside_totals", "AGGREGATE_RATIO", "AGGREGATE_EVENTS"]
 
 #: A row whose person-time is this many times the median, holding at least AGGREGATE_EVENTS
 #: events, looks like the sum of many people (common practice: one person per row).
@@ -124,3 +126,38 @@ def check_one_person_per_row(count: np.ndarray, person_time: np.ndarray, col, co
                          f"{AGGREGATE_RATIO:g} times the median person-time with "
                          f"{AGGREGATE_EVENTS} or more events in '{count_col}': they look like "
                          "totals of many people; give one person per row")
+
+
+def set_aside_totals(outcome: pd.Series, followup: pd.Series, group: np.ndarray,
+                     rows: np.ndarray, event=None) -> dict:
+    """Events and follow-up of the rows set aside for missing values, by exposure group.
+
+    The follow-up column is never missing (checked on every row), so its sum is known for
+    every set-aside row whose group is recorded; events only where the outcome is recorded
+    (those rows are counted in ``outcome_missing``). ``event`` is the event label of a
+    time-to-event outcome (``outcome_levels["event"]``, compared as the coding compares it);
+    None sums the counts of a rate outcome. Rows whose group is not recorded are in neither.
+
+    Returns
+    -------
+    dict
+        ``{"events", "person_time", "outcome_missing"}``, each ``{"exposed", "reference"}``.
+    """
+    values = outcome[rows]
+    recorded = values.notna().to_numpy()
+    if event is None:
+        counts = values.to_numpy(dtype=np.float64, na_value=0.0)
+    else:
+        events = [u for u in pd.unique(values.dropna()) if _same(u, event)]
+        counts = values.isin(events).to_numpy(dtype=np.float64)
+    time = followup[rows].to_numpy(dtype=np.float64)
+    g = group[rows]
+    out = {"events": {}, "person_time": {}, "outcome_missing": {}}
+    for name, code in (("exposed", 1), ("reference", 0)):
+        mine = g == code
+        # exact sums (math.fsum): these rows are in input order, and the result must not
+        # depend on it
+        out["events"][name] = int(round(math.fsum(counts[mine & recorded])))
+        out["person_time"][name] = math.fsum(time[mine])
+        out["outcome_missing"][name] = int(np.sum(mine & ~recorded))
+    return out

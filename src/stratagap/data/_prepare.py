@@ -59,6 +59,9 @@ class Flow:
     missing_policy: str = "drop"
     missing_outcome_p_value: float | None = None
     negative_control_missing: int = 0
+    #: follow-up outcomes: events and follow-up of the rows set aside for missing values
+    #: (:func:`._followup.set_aside_totals`); joins the flow's ``followup_by_step``, not to_dict
+    followup_set_aside: dict | None = None
 
     def to_dict(self) -> dict:
         p = self.missing_outcome_p_value
@@ -316,11 +319,17 @@ def prepare(table, *, exposure, outcome, covariates, exposed_value=None, outcome
     if negative_control is not None:
         nc = work[negative_control].to_numpy(dtype=np.float64, na_value=np.nan)
 
+    set_aside = None
+    if follow_col is not None:
+        set_aside = _followup.set_aside_totals(
+            table[outcome], table[follow_col], group, dropped,
+            event=None if out_levels is None else out_levels["event"])
     flow = Flow(rows_read=n_read, dropped_missing_by_column=by_column, dropped_missing_by_group=by_group,
                 missing_outcome_by_group=miss_out, rows_used=len(t),
                 used_by_group={"exposed": n1, "reference": len(t) - n1}, missing_policy=missing,
                 missing_outcome_p_value=p_out,
-                negative_control_missing=0 if nc is None else int(np.isnan(nc).sum()))
+                negative_control_missing=0 if nc is None else int(np.isnan(nc).sum()),
+                followup_set_aside=set_aside)
     return PreparedData(
         t=t, y=y, X=design.X, design_names=design.names, terms=design.terms, outcome_type=out_type,
         exposure_levels=levels, flow=flow, covariates=design.covariates, raw=raw, user_strata=strata,

@@ -9,8 +9,7 @@ from __future__ import annotations
 
 from .formatting import format_number as _n
 
-__all__ = ["is_rate", "summary_lines", "verdict_sentences", "baseline_rows", "flow_detail",
-           "effect_blocks"]
+__all__ = ["is_rate", "summary_lines", "verdict_sentences", "baseline_rows", "effect_blocks"]
 
 
 def is_rate(followup) -> bool:
@@ -36,7 +35,6 @@ def summary_lines(data: dict) -> list[str]:
     col = block["person_time_column"]
     per_block = adj["rate_difference_per"]
     rr = adj["rate_ratio"]
-    ev, pt = block["events_by_group"], block["person_time_by_group"]
     lines = [f"  rate difference per unit of '{col}' (above); per {per:,} units of '{col}': "
              f"{_n(per_block['estimate'])} ({_ci(level, per_block)})"]
     if rr.get("estimate") is None:
@@ -44,9 +42,6 @@ def summary_lines(data: dict) -> list[str]:
     else:
         lines.append(f"  Mantel-Haenszel rate ratio (conditional, secondary): "
                      f"{_n(rr['estimate'])} ({_ci(level, rr)})")
-    lines.append(f"  events / person-time analysed: exposed {ev['exposed']:,.0f} / "
-                 f"{_n(pt['exposed'])}, reference {ev['reference']:,.0f} / "
-                 f"{_n(pt['reference'])}")
     return lines
 
 
@@ -71,35 +66,15 @@ def verdict_sentences(spec, adjusted) -> tuple[str, list[str]]:
 
 
 def baseline_rows(data: dict) -> list[dict]:
-    """Rows of the baseline table: events, person-time and the crude rate per 1,000, by group."""
+    """The baseline table's crude-rate row (per 1,000 units), by group; the events and
+    person-time rows above it come from :mod:`._followup_counts`."""
     block = data.get("followup")
     if not is_rate(block):
         return []
-    ev, pt, rate = (block[k] for k in ("events_by_group", "person_time_by_group",
-                                       "rates_by_group"))
-    per = block["per"]
-    col = block["person_time_column"]
-
-    def row(name, summary, fmt):
-        return {"characteristic": name, "level": "", "summary": summary,
-                "exposed": fmt("exposed"), "reference": fmt("reference"),
-                "smd_before": None, "smd_after": None}
-
-    return [row("Events", "count", lambda g: f"{ev[g]:,.0f}"),
-            row(f"Person-time ({col})", "sum", lambda g: _n(pt[g])),
-            row("Crude rate", f"events per {per:,} {col}",
-                lambda g: "" if rate[g] is None else _n(rate[g] * per))]
-
-
-def flow_detail(data: dict) -> str:
-    """Text added to the flow's analysed box: events and person-time by group."""
-    block = data.get("followup")
-    if not is_rate(block):
-        return ""
-    ev, pt = block["events_by_group"], block["person_time_by_group"]
-    col = block["person_time_column"]
-    return (f"; events exposed {ev['exposed']:,.0f}, reference {ev['reference']:,.0f}; "
-            f"person-time ({col}) exposed {_n(pt['exposed'])}, reference {_n(pt['reference'])}")
+    rate, per, col = block["rates_by_group"], block["per"], block["person_time_column"]
+    cells = {g: "" if rate[g] is None else _n(rate[g] * per) for g in ("exposed", "reference")}
+    return [{"characteristic": "Crude rate", "level": "", "summary": f"events per {per:,} {col}",
+             **cells, "smd_before": None, "smd_after": None}]
 
 
 def effect_blocks(data: dict) -> list[tuple[str, dict]]:

@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 import math
 
-from ..rates_text import effect_blocks as rate_effect_blocks, flow_detail as rate_flow_detail
+from ..rates_text import effect_blocks as rate_effect_blocks
 from ..formatting import describe_terms, format_number, format_value as _f
 from ..verdict import NOT_SIGNIFICANT, gamma_sentence
 from ._matching import matching_context
@@ -51,11 +51,7 @@ def _test_rows(test):
 
 
 def _flow_steps(data):
-    block = data.get("followup") or {}
-    survival = block if block.get("outcome_type") == "time-to-event" else None
-    steps = flow_steps(data["flow"], data.get("clusters"), survival)
-    steps[-1]["detail"] += rate_flow_detail(data)  # rate outcomes: events and person-time
-    return steps
+    return flow_steps(data["flow"], data.get("clusters"))
 
 
 def estimand_text(q: dict) -> str:

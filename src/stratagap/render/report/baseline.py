@@ -23,6 +23,7 @@ import math
 import numpy as np
 import pandas as pd
 
+from .._followup_counts import baseline_rows as followup_baseline_rows
 from ..rates_text import baseline_rows as rate_baseline_rows
 from ._style import view_of
 
@@ -104,7 +105,8 @@ def baseline_table(result) -> pd.DataFrame:
     out = [{"characteristic": "Number of people", "level": "", "summary": "count",
             "exposed": "" if n1 is None else f"{n1:,}", "reference": "" if n0 is None else f"{n0:,}",
             "smd_before": None, "smd_after": None}]
-    out.extend(rate_baseline_rows(data))  # rate outcomes: events, person-time, crude rate
+    out.extend(followup_baseline_rows(data))  # follow-up outcomes: events, person-time
+    out.extend(rate_baseline_rows(data))  # rate outcomes: the crude rate
     have = raw is not None and len(raw) == len(t) and len(t) > 0
     for cov in covariates:
         if have and cov in raw.columns:

@@ -1,8 +1,9 @@
 """The participant-flow diagram (STROBE item 13, von Elm et al. 2007), as boxes for the report.
 
 Rows read, set aside for missing values (by column and by group), set aside by the overlap rule
-(by group) and by strata lacking a group, and the rows analysed (by group). Only the result's
-counts are shown; nothing is recounted.
+(by group) and by strata lacking a group, and the rows analysed (by group). For a time-to-event
+or a rate outcome every box and every exit also gives the events and the person-time by group
+(the flow's ``followup_by_step``). Only the result's counts are shown; nothing is recounted.
 
 References
 ----------
@@ -12,6 +13,8 @@ Epidemiology (STROBE) statement. Annals of Internal Medicine 147:573-577.
 
 from __future__ import annotations
 
+from .._followup_counts import counts_text
+
 __all__ = ["flow_steps"]
 
 
@@ -20,11 +23,23 @@ def _groups(counts: dict | None) -> str:
     return ", ".join(f"{k} {int(v):,}" for k, v in counts.items())
 
 
-def flow_steps(flow: dict, clusters: dict | None = None, followup: dict | None = None) -> list[dict]:
+def _missing_counts(step: dict, column: str) -> list[str]:
+    """Events and person-time of the rows set aside for missing values (of those whose group
+    is recorded; events only where the outcome is)."""
+    lines = [counts_text(step, column)]
+    unknown = step.get("outcome_missing") or {}
+    if any(unknown.values()):
+        lines.append(f"events not known (outcome missing): exposed {int(unknown['exposed']):,}, "
+                     f"reference {int(unknown['reference']):,} rows")
+    return lines
+
+
+def flow_steps(flow: dict, clusters: dict | None = None) -> list[dict]:
     """Main boxes, each with the exclusions that leave the flow after it.
 
     With ``clusters`` (the result's ``clusters`` block) the boxes count clusters beside rows;
-    with ``followup`` (a time-to-event block) the analysed box gives events and person-time.
+    with the flow's ``followup_by_step`` (time-to-event and rate outcomes) every box and exit
+    gives events and person-time by group.
 
     Returns
     -------
@@ -56,17 +71,18 @@ def flow_steps(flow: dict, clusters: dict | None = None, followup: dict | None =
     exits = []
     trimmed = flow["trimmed_by_group"]
     n_trim = sum(int(v) for v in trimmed.values())
-    exits.append({"title": "Set aside by the overlap rule (trimming)", "n": n_trim,
+    exits.append({"title": "Set aside by the overlap rule (trimming)", "n": n_trim, "key": "trimmed",
                   "lines": [f"by group: {_groups(trimmed)}"] if trimmed else []})
     lacking = flow["strata_set_aside_by_group"]
     n_lack = sum(int(v) for v in lacking.values())
     if n_lack:
         exits.append({"title": "Set aside: strata lacking one group", "n": n_lack,
+                      "key": "strata_set_aside",
                       "lines": [f"by group: {_groups(lacking)}"]})
     unmatched = flow.get("not_matched_by_group")  # design=match only
     if unmatched:
         exits.append({"title": "Not in a matched set (exposed left unmatched, reference unused)",
-                      "n": sum(int(v) for v in unmatched.values()),
+                      "n": sum(int(v) for v in unmatched.values()), "key": "not_matched",
                       "lines": [f"by group: {_groups(unmatched)}"]})
     steps.append({"title": "Complete cases", "n": used,
                   "detail": _groups(flow["used_by_group"]), "exits": exits})
@@ -80,9 +96,15 @@ def flow_steps(flow: dict, clusters: dict | None = None, followup: dict | None =
             exits[0]["lines"].append(f"clusters: {_groups(trimmed_c)}")
         holding = "" if clusters["level"] == "cluster" else " (holding each group)"
         steps[-1]["detail"] += f"; clusters{holding}: {_groups(cf['clusters_analysed'])}"
-    if followup and followup.get("events_by_group"):
-        ev, pt = followup["events_by_group"], followup["person_time_by_group"]
-        steps[-1]["detail"] += (f"; events: exposed {int(ev['exposed']):,}, reference "
-                                f"{int(ev['reference']):,}; person-time: exposed "
-                                f"{pt['exposed']:,.1f}, reference {pt['reference']:,.1f}")
+    counts = flow.get("followup_by_step") or {}  # time-to-event and rate outcomes only
+    column = counts.get("column")
+    for exit_ in exits:
+        key = exit_.pop("key")  # the exit's step in followup_by_step
+        if exit_["n"] and counts.get(key):
+            exit_["lines"].append(counts_text(counts[key], column))
+    if counts:
+        if missing_exit is not None and counts.get("set_aside_missing") and missing_exit["n"]:
+            missing_exit["lines"].extend(_missing_counts(counts["set_aside_missing"], column))
+        steps[1]["detail"] += "; " + counts_text(counts["complete_cases"], column)
+        steps[-1]["detail"] += "; " + counts_text(counts["analysed"], column)
     return steps
