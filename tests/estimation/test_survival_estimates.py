@@ -266,6 +266,33 @@ def test_stratum_model_with_exposure_term_against_phreg():
     assert rd.per_stratum[0]["risk_exposed"] == pytest.approx(expected, abs=1e-8)
 
 
+def test_model_over_all_strata_where_a_stratum_lacks_the_events():
+    """Stratum 0 is too small for its own models; the Cox model over both strata (a baseline
+    per stratum, exposure and covariate effects shared) predicts its risks, checked against
+    statsmodels ``PHReg(..., strata=)`` and its own per-stratum Breslow baselines."""
+    rng = np.random.default_rng(23)
+    n0, n1 = 40, 200  # stratum sizes
+    codes = np.repeat([0, 1], [n0, n1])
+    X = rng.normal(size=(n0 + n1, 2))
+    t = (rng.random(n0 + n1) < 0.5).astype(np.int8)
+    time = rng.exponential(1 / np.exp(0.5 * X[:, 0] + 0.3 * t)) + 0.01
+    event = (rng.random(n0 + n1) < 0.7).astype(float)
+    rd = adjusted_risk_difference(time, event, t, X, codes, np.array([0.3, 0.7]), 0.8,
+                                  estimand="ate", bootstrap=0)
+    small = rd.per_stratum[0]
+    assert small["model_exposed"] == small["model_reference"] == \
+        "cox with exposure term (all strata)"
+    assert rd.per_stratum[1]["model_exposed"] == "cox"
+    Z = np.column_stack([t, X])
+    fit = PHReg(time, Z, status=event, strata=codes, ties="breslow").fit()
+    times, cumhaz, _ = fit.baseline_cumulative_hazard[0]  # stratum 0's Breslow baseline
+    lam = _through(times, cumhaz, 0.8)
+    for g, key in ((1, "risk_exposed"), (0, "risk_reference")):
+        aim = np.column_stack([np.full(n0, g), X[:n0]])
+        expected = 1 - np.mean(np.exp(-lam * np.exp(aim @ fit.params)))
+        assert small[key] == pytest.approx(expected, abs=1e-8)
+
+
 def test_hazard_ratio_sandwich_matches_statsmodels_and_survives_early_censoring():
     """The robust SE equals statsmodels PHReg's own (``fit(groups=arange)``) where that one is
     defined, and stays finite when a unit is censored before its stratum's first event (where

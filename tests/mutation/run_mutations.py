@@ -44,6 +44,11 @@ class Mutation:
 
 
 MUTATIONS = [
+    Mutation("survival_no_joint_model", "a stratum-group without the events for its own or its "
+             "stratum's Cox model falls back to Kaplan-Meier instead of the model over all strata",
+             "src/stratagap/estimation/survival/risk_difference.py",
+             'joint["joint"] = _joint_model(time, event, t, X, codes, S, horizon, starts)',
+             'joint["joint"] = None', ("tests/estimation/test_survival_estimates.py",)),
     Mutation("rate_mh_variance_numerator", "Var(ln RR_MH) numerator uses a_s instead of a_s + b_s",
              "src/stratagap/estimation/rates/_tables.py",
              "num = float(np.sum((a + b) * pt1 * pt0 / pt ** 2))",

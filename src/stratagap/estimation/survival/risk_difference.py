@@ -12,8 +12,12 @@ Rule (common practice, no single source: about ten events per parameter, Peduzzi
 a stratum-group gets its Cox model when it has at least ``EVENTS_PER_COLUMN`` events per
 covariate column (constant columns in it dropped) and the fit converges; otherwise the
 stratum's Cox model of exposure and the covariates (shared covariate effects and baseline,
-exposure as one term) when the stratum has that many events per column; otherwise the
-stratum-group's Kaplan-Meier ``S(H)``. The model used is recorded per stratum.
+exposure as one term) when the stratum has that many events per column; otherwise one Cox
+model of exposure and the covariates over all strata, each stratum with its own Breslow
+baseline, when the whole sample has them (small strata borrow the covariate effects of the
+others rather than falling back to a Kaplan-Meier that keeps the confounding inside the
+stratum); otherwise the stratum-group's Kaplan-Meier ``S(H)``. The model used is recorded per
+stratum.
 
 Confidence interval: a bootstrap within stratum-groups (group sizes per stratum fixed, so the
 estimand weights are fixed), the whole within-stratum procedure repeated; ``B`` resamples from
@@ -59,33 +63,47 @@ def bootstrap_generators(seed: int, label: str, n_resamples: int):
     return [np.random.default_rng(c) for c in root.spawn(-(-n_resamples // BLOCK))]
 
 
-def _survival_cox(time, event, X, target, horizon, start=None):
-    """Mean predicted S(H | x) over ``target`` rows and the coefficients, or None.
+def _cox_coefficients(time, event, Z, start=None, strata=None):
+    """Breslow-ties Cox coefficients (statsmodels ``PHReg``), or None when the fit fails.
 
     ``start``: starting values of the Newton iterations (the full-sample fit, in the bootstrap;
-    the maximum does not depend on them).
+    the maximum does not depend on them). ``strata``: baselines stratified by these codes.
     """
     from statsmodels.duration.hazard_regression import PHReg
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         try:
-            model = PHReg(time, X, status=event, ties="breslow")
+            model = PHReg(time, Z, status=event, strata=strata, ties="breslow")
             beta = np.asarray(model.fit(start_params=start).params)
         except (np.linalg.LinAlgError, ValueError):
             return None
     if not np.all(np.isfinite(beta)) or any("converge" in str(w.message).lower() for w in caught):
         return None
-    lin = X @ beta
-    shift = lin.max()
-    risk = np.exp(lin - shift)
+    return beta
+
+
+def _breslow_at(time, event, risk, horizon):
+    """Breslow's cumulative baseline hazard at ``horizon`` (Breslow 1972).
+
+    With tied times the denominator is the risk set at the first of the ties.
+    """
     order = np.argsort(time, kind="stable")
     ts, es, rs = time[order], event[order], risk[order]
     at_risk = np.cumsum(rs[::-1])[::-1]
-    # Breslow 1972; with tied times the denominator is the risk set at the first of the ties
     uniq, first = np.unique(ts, return_index=True)
     d = np.add.reduceat(es, first)
-    cum0 = float(np.sum(np.where((d > 0) & (uniq <= horizon), d / at_risk[first], 0.0)))  # Breslow 1972
+    return float(np.sum(np.where((d > 0) & (uniq <= horizon), d / at_risk[first], 0.0)))
+
+
+def _survival_cox(time, event, X, target, horizon, start=None):
+    """Mean predicted S(H | x) over ``target`` rows and the coefficients, or None."""
+    beta = _cox_coefficients(time, event, X, start)
+    if beta is None:
+        return None
+    lin = X @ beta
+    shift = lin.max()
+    cum0 = _breslow_at(time, event, np.exp(lin - shift), horizon)
     return float(np.mean(np.exp(-cum0 * np.exp(target @ beta - shift)))), beta
 
 
@@ -121,11 +139,39 @@ def _pooled_survival(time, event, t, X, in_s, target, g, horizon, cache, betas, 
     return fitted[0]
 
 
+def _joint_model(time, event, t, X, codes, S, horizon, starts):
+    """The Cox model of exposure and the covariates over all strata, baselines by stratum.
+
+    The last model before Kaplan-Meier: covariate effects and the exposure term shared by the
+    strata, each stratum with its own Breslow baseline (so the score strata still carry the
+    confounding between them). Fitted when the whole sample has ``EVENTS_PER_COLUMN`` events
+    per column. Returns ``(beta, cols, cum0, shift)`` with ``cum0`` the (S,) baselines at H
+    (on the scale of ``exp(lin - shift)``), or None.
+    """
+    Z = np.column_stack([t.astype(float), X])
+    cols = _varying(Z)
+    # without a covariate there is nothing to adjust within a stratum: Kaplan-Meier is the answer
+    if cols.size < 2 or cols[0] != 0 or event.sum() < EVENTS_PER_COLUMN * cols.size:
+        return None
+    start = None if starts is None else starts.get("joint")
+    start = start if start is not None and start.size == cols.size else None
+    beta = _cox_coefficients(time, event, Z[:, cols], start, strata=codes)
+    if beta is None:
+        return None
+    lin = Z[:, cols] @ beta
+    shift = lin.max()
+    risk = np.exp(lin - shift)
+    cum0 = np.array([_breslow_at(time[codes == s], event[codes == s], risk[codes == s], horizon)
+                     for s in range(S)])
+    return beta, cols, cum0, shift
+
+
 def _stratum_risks(time, event, t, X, codes, S, estimand, horizon, cells, starts=None):
     """(S, 2) survival at H (exposed, reference), the model used and the Cox coefficients."""
     surv = np.full((S, 2), np.nan)
     models = [["", ""] for _ in range(S)]
     betas = {}
+    joint = {}  # the model over all strata, fitted when first needed
     for s in range(S):
         in_s = codes == s
         target = X[in_s] if estimand == "ate" else X[in_s & (t == 1)]
@@ -147,6 +193,15 @@ def _stratum_risks(time, event, t, X, codes, S, estimand, horizon, cells, starts
                 value = _pooled_survival(time, event, t, X, in_s, target, g, horizon, pooled,
                                          betas, starts, s)
                 models[s][j] = "cox with exposure term (stratum)" if value is not None else ""
+            if value is None:
+                if "joint" not in joint:  # fitted once, when a first stratum-group needs it
+                    joint["joint"] = _joint_model(time, event, t, X, codes, S, horizon, starts)
+                if joint["joint"] is not None:
+                    beta, jcols, cum0, shift = joint["joint"]
+                    betas["joint"] = beta
+                    aim = np.column_stack([np.full(target.shape[0], float(g)), target])[:, jcols]
+                    value = float(np.mean(np.exp(-cum0[s] * np.exp(aim @ beta - shift))))
+                    models[s][j] = "cox with exposure term (all strata)"
             if value is None:
                 value = float(kaplan_meier(tt, ee).at(horizon)[0])
                 models[s][j] = "kaplan-meier"
@@ -251,8 +306,10 @@ def adjusted_risk_difference(time, event, t, X, codes, weights, horizon, *, esti
             "events_reference": int(event[cells[s][1]].sum())} for s in range(S)]
     rule = (f"within each stratum-group, a Cox model of the covariates (Breslow baseline) when "
             f"it has at least {EVENTS_PER_COLUMN} events per covariate column, else the "
-            "stratum's Cox model with an exposure term when the stratum has them, else the "
-            "stratum-group's Kaplan-Meier; predicted S(H) averaged over the stratum's "
+            "stratum's Cox model with an exposure term when the stratum has them, else one Cox "
+            "model of exposure and the covariates over all strata with a baseline per stratum "
+            "when the sample has them, else the stratum-group's Kaplan-Meier; predicted S(H) "
+            "averaged over the stratum's "
             f"{'units' if estimand == 'ate' else 'exposed units'}; estimand weights")
     boot = {"resamples": int(bootstrap), "seed": int(seed), "stream": "survival-bootstrap",
             "scheme": "rows resampled within stratum-groups; interval estimate +- z SE"}
