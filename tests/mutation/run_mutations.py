@@ -159,7 +159,10 @@ def _copy_repo(dest: Path) -> None:
 
 def _pytest(copy: Path, tests) -> int:
     env = dict(os.environ, PYTHONPATH=str(copy / "src"), PYTHONDONTWRITEBYTECODE="1")
-    cmd = [sys.executable, "-m", "pytest", "-q", "-x", "-p", "no:cacheprovider", *tests]
+    # one process (-n 0): under pytest-xdist, -x stops the workers and pytest exits 2
+    # ("interrupted"), which would read as an error instead of a caught mutation
+    cmd = [sys.executable, "-m", "pytest", "-q", "-x", "-n", "0", "-p", "no:cacheprovider",
+           *tests]
     done = subprocess.run(cmd, cwd=copy, env=env, stdout=subprocess.PIPE,
                           stderr=subprocess.STDOUT, text=True)
     return done.returncode
