@@ -38,7 +38,6 @@ Breslow, N. E. (1972). Discussion of Cox (1972). JRSS B 34:216-217.
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -47,6 +46,7 @@ from scipy import stats
 from ..._base.jsonable import jsonable
 from ..._base.rng import BLOCK
 from ._curves import kaplan_meier
+from ._cox_fit import cox_newton
 
 __all__ = ["RiskDifference", "adjusted_risk_difference", "EVENTS_PER_COLUMN",
            "DEFAULT_BOOTSTRAP", "bootstrap_generators"]
@@ -64,23 +64,13 @@ def bootstrap_generators(seed: int, label: str, n_resamples: int):
 
 
 def _cox_coefficients(time, event, Z, start=None, strata=None):
-    """Breslow-ties Cox coefficients (statsmodels ``PHReg``), or None when the fit fails.
+    """Breslow-ties Cox coefficients (:func:`._cox_fit.cox_newton`, equal to statsmodels
+    ``PHReg``'s), or None when the fit fails.
 
     ``start``: starting values of the Newton iterations (the full-sample fit, in the bootstrap;
     the maximum does not depend on them). ``strata``: baselines stratified by these codes.
     """
-    from statsmodels.duration.hazard_regression import PHReg
-
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        try:
-            model = PHReg(time, Z, status=event, strata=strata, ties="breslow")
-            beta = np.asarray(model.fit(start_params=start).params)
-        except (np.linalg.LinAlgError, ValueError):
-            return None
-    if not np.all(np.isfinite(beta)) or any("converge" in str(w.message).lower() for w in caught):
-        return None
-    return beta
+    return cox_newton(time, event, Z, strata=strata, start=start)
 
 
 def _breslow_at(time, event, risk, horizon):
