@@ -2,13 +2,12 @@
 
 The scenario and its truths are in tests/survival_study.py (invented; the covariates confound
 exposure and hazard; horizon 8). Here: the first m = 20 datasets of each arm, through
-``stratagap.analyze`` (about 8 s each on one core; measured 6 minutes wall on a shared machine,
-coverage 90 % and rejection 0 % on these 20 + 20 datasets). Bands (exact binomial,
+``stratagap.analyze`` (about 7 s each on one core). Bands (exact binomial,
 tests/calibration/bands.py): coverage of the 95 % interval of the risk difference at the
 horizon inside [80 %, 100 %] (false alarm 0.26 % for a method at 95 %); rejection by the
 default test under the sharp null (beta = 0) inside [0 %, 20 %] (false alarm 0.26 % at 5 %,
 power 76 % against a true 30 %). The fuller study: ``python tests/survival_study.py --m 200``;
-the measured figures of m = 40 per arm are in docs/methods.md sec. 10.
+the measured figures of m = 200 per arm are in docs/methods.md (time-to-event section).
 
 Sources: Rosenbaum 2002 (Statistical Science 17:286): permuting scores fixed under the sharp
 null gives an exact test, so the nominal 5 % applies; the interval's nominal 95 %.
