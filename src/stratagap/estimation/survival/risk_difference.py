@@ -63,16 +63,6 @@ def bootstrap_generators(seed: int, label: str, n_resamples: int):
     return [np.random.default_rng(c) for c in root.spawn(-(-n_resamples // BLOCK))]
 
 
-def _cox_coefficients(time, event, Z, start=None, strata=None):
-    """Breslow-ties Cox coefficients (:func:`._cox_fit.cox_newton`, equal to statsmodels
-    ``PHReg``'s), or None when the fit fails.
-
-    ``start``: starting values of the Newton iterations (the full-sample fit, in the bootstrap;
-    the maximum does not depend on them). ``strata``: baselines stratified by these codes.
-    """
-    return cox_newton(time, event, Z, strata=strata, start=start)
-
-
 def _breslow_at(time, event, risk, horizon):
     """Breslow's cumulative baseline hazard at ``horizon`` (Breslow 1972).
 
@@ -87,8 +77,12 @@ def _breslow_at(time, event, risk, horizon):
 
 
 def _survival_cox(time, event, X, target, horizon, start=None):
-    """Mean predicted S(H | x) over ``target`` rows and the coefficients, or None."""
-    beta = _cox_coefficients(time, event, X, start)
+    """Mean predicted S(H | x) over ``target`` rows and the coefficients, or None.
+
+    ``start``: Newton's starting values (the full-sample fit, in the bootstrap; the maximum
+    does not depend on them).
+    """
+    beta = cox_newton(time, event, X, start=start)  # equals PHReg's Breslow fit
     if beta is None:
         return None
     lin = X @ beta
@@ -145,7 +139,7 @@ def _joint_model(time, event, t, X, codes, S, horizon, starts):
         return None
     start = None if starts is None else starts.get("joint")
     start = start if start is not None and start.size == cols.size else None
-    beta = _cox_coefficients(time, event, Z[:, cols], start, strata=codes)
+    beta = cox_newton(time, event, Z[:, cols], strata=codes, start=start)
     if beta is None:
         return None
     lin = Z[:, cols] @ beta
