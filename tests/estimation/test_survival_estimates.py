@@ -335,6 +335,14 @@ def test_cox_newton_equals_phreg_with_ties_strata_and_separation():
         # from the other side of the maximum (the bootstrap starts at the full-sample fit)
         assert np.allclose(cox_newton(time, event, Z, strata=strata, start=ref + 0.5), ref,
                            atol=1e-8)
+    # large designs go to PHReg itself (memory n p rather than n p^2): the same answer
+    from stratagap.estimation.survival import _cox_fit
+    limit = _cox_fit.VECTORISED_LIMIT
+    try:
+        _cox_fit.VECTORISED_LIMIT = 10
+        assert np.allclose(cox_newton(time, event, Z, strata=codes), ref, atol=1e-8)
+    finally:
+        _cox_fit.VECTORISED_LIMIT = limit
     # a covariate that separates the events from the rest: no finite maximum
     sep = np.column_stack([Z[:, 0], event])
     assert cox_newton(time, event, sep) is None

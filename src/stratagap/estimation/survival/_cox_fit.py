@@ -22,6 +22,10 @@ __all__ = ["cox_newton"]
 MAX_STEPS = 40
 #: Convergence: the largest coefficient step below this.
 STEP_TOL = 1e-9
+#: Above this many entries of the (n, p, p) risk-set products the fit goes to ``PHReg``, whose
+#: memory grows with n p rather than n p^2 (the vectorised fit is for the bootstrap's many
+#: small fits; at a million rows and 20 columns it would hold several GB).
+VECTORISED_LIMIT = 20_000_000
 
 
 def _risk_set_layout(time, strata):
@@ -61,6 +65,8 @@ def cox_newton(time, event, Z, strata=None, start=None):
     time = np.asarray(time, float)
     event = np.asarray(event, float)
     Z = np.asarray(Z, float).reshape(time.size, -1)
+    if Z.shape[0] * Z.shape[1] ** 2 > VECTORISED_LIMIT:
+        return _phreg(time, event, Z, strata, start)
     strata = np.zeros(time.size, np.int64) if strata is None else np.asarray(strata)
     order, end, first = _risk_set_layout(time, strata)
     Zs, es = Z[order], event[order]
@@ -101,3 +107,21 @@ def cox_newton(time, event, Z, strata=None, start=None):
         if np.max(np.abs(step)) < STEP_TOL:
             return beta if np.all(np.isfinite(beta)) else None
     return None
+
+
+def _phreg(time, event, Z, strata, start):
+    """The same fit by statsmodels ``PHReg`` (large designs), or None when it fails."""
+    import warnings
+
+    from statsmodels.duration.hazard_regression import PHReg
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            beta = np.asarray(PHReg(time, Z, status=event, strata=strata, ties="breslow")
+                              .fit(start_params=start).params)
+        except (np.linalg.LinAlgError, ValueError):
+            return None
+    if not np.all(np.isfinite(beta)) or any("converge" in str(w.message).lower() for w in caught):
+        return None
+    return beta
