@@ -1,6 +1,17 @@
 """Shared fixtures: the invented shift-work data (stratagap.demo) and a small analysis of it."""
 
-import pytest
+import os
+
+# One BLAS thread per process. Why: pytest-xdist runs one worker per core (2 in CI), and a BLAS
+# pool of 2 threads in each worker oversubscribes the cores (seen: CI at 45 min against 22 min
+# serial). Set before numpy loads its BLAS; the workers and the CLI subprocesses inherit it.
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
+
+import pytest  # noqa: E402
+from threadpoolctl import threadpool_limits  # noqa: E402
+
+threadpool_limits(1)  # numpy may be loaded already (by a plugin): limit its pool as well
 
 from stratagap.demo import DEMO_COVARIATES, make_shift_work_data
 
