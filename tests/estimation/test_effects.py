@@ -204,15 +204,17 @@ def test_dummy_absent_from_one_group_enters_as_a_main_effect(estimand):
     e = np.where(t == 1, (rng.random(n) < 0.2).astype(float), 0.0)
     e[np.flatnonzero(t == 0)[0]] = 1.0
     y = x + 2.0 * d - e + t * (1.0 + 0.5 * x) + rng.normal(size=n)
-    X = np.column_stack([x, d, e])
+    # x listed last: had the levels been interacted anyway, every prefix of the interacted
+    # columns would hold level e and fail, and x would lose its interaction too
+    X = np.column_stack([d, e, x])
     res = effects.stratified_regression(y, t, X, np.zeros(n, np.int64), estimand=estimand,
-                                        names=["x", "level d", "level e"])
+                                        names=["level d", "level e", "x"])
     row = res.per_stratum[0]
     assert row["model"] == "partial interactions" and row["interacted"] == ["x"]
     assert "main effect only (slope shared by the groups): level d, level e" in row["reason"]
     centre = X.mean(axis=0) if estimand == "ate" else X[t == 1].mean(axis=0)
     Xc = X - centre
-    D = np.column_stack([np.ones(n), t, Xc, t * Xc[:, 0]])
+    D = np.column_stack([np.ones(n), t, Xc, t * Xc[:, 2]])
     fit = sm.OLS(y, D).fit(cov_type="HC2")
     assert row["estimate"] == pytest.approx(fit.params[1], abs=1e-10)
     assert row["se"] == pytest.approx(fit.bse[1], rel=1e-9)
@@ -243,6 +245,89 @@ def test_interactions_that_extrapolate_give_way_to_main_effects():
     wide = effects.stratified_regression(y, t, x2[:, None], np.zeros(n1 + n0, np.int64),
                                          estimand="att", names=["x"])
     assert wide.per_stratum[0]["model"] == "interactions"
+
+
+def test_interactions_give_way_column_by_column_from_the_last_covariate():
+    # x is as wide in both groups; z is wide among the exposed and narrow among the 40
+    # reference units, so interacting z extrapolates (design variance ratio > 4) while
+    # interacting x alone does not. The ladder keeps x's interaction and shares z's slope
+    # ("partial interactions"), rather than giving up every interaction. Reference: statsmodels
+    # OLS with HC2 on [1, t, xc, zc, t*xc], centred at the exposed means (ATT).
+    import statsmodels.api as sm
+
+    rng = np.random.default_rng(23)
+    n1, n0 = 200, 40
+    n = n1 + n0
+    x = rng.normal(0, 1, n)
+    z = np.concatenate([rng.normal(0.5, 2, n1), rng.uniform(-0.1, 0.1, n0)])
+    t = np.r_[np.ones(n1), np.zeros(n0)].astype(np.int8)
+    y = x + 0.5 * z + t * (1 + 0.5 * x) + rng.normal(size=n)
+    xc, zc = x - x[t == 1].mean(), z - z[t == 1].mean()
+    full = np.column_stack([np.ones(n), t, xc, zc, t * xc, t * zc])
+    main = full[:, :4]
+    prefix = full[:, :5]
+
+    def ratio(D):
+        return np.linalg.inv(D.T @ D)[1, 1] / np.linalg.inv(main.T @ main)[1, 1]
+
+    assert ratio(full) > 4 >= ratio(prefix)  # the data do what the comment says
+    res = effects.stratified_regression(y, t, np.column_stack([x, z]), np.zeros(n, np.int64),
+                                        estimand="att", names=["x", "z"])
+    row = res.per_stratum[0]
+    assert row["model"] == "partial interactions"
+    assert "interactions of z and later columns given up" in row["reason"]
+    assert f"{ratio(full):.3g} times" in row["reason"]
+    ref = sm.OLS(y, prefix).fit(cov_type="HC2")
+    assert res.estimate == pytest.approx(ref.params[1], rel=1e-10)
+    assert res.se == pytest.approx(ref.bse[1], rel=1e-8)
+    # with z listed first, its interaction is the first to try and the last to give up: no
+    # prefix passes, so main effects are used and the analysis says it was simplified
+    with pytest.warns(ModelWarning, match="simplified"):
+        swapped = effects.stratified_regression(y, t, np.column_stack([z, x]),
+                                                np.zeros(n, np.int64), estimand="att",
+                                                names=["z", "x"])
+    assert swapped.per_stratum[0]["model"] == "main effects"
+
+
+def _exact_inverse_tt(D):
+    """[(D'D)^-1]_tt (column 1) in exact rational arithmetic: Gauss-Jordan on Fractions."""
+    from fractions import Fraction
+
+    F = [[Fraction(float(v)) for v in row] for row in D]
+    k = len(F[0])
+    A = [[sum(r[i] * r[j] for r in F) for j in range(k)] + [Fraction(int(i == j)) for j in range(k)]
+         for i in range(k)]
+    for c in range(k):
+        piv = next(r for r in range(c, k) if A[r][c] != 0)
+        A[c], A[piv] = A[piv], A[c]
+        A[c] = [v / A[c][c] for v in A[c]]
+        for r in range(k):
+            if r != c and A[r][c] != 0:
+                A[r] = [a - A[r][c] * b for a, b in zip(A[r], A[c])]
+    return float(A[1][k + 1])
+
+
+def test_design_variance_is_exact_on_a_nearly_collinear_design():
+    # Two columns nearly equal on the reference units, apart on the exposed (a spline column
+    # almost linear on an extreme stratum's reference units), centred at the exposed means:
+    # the reference fit must extrapolate along the near-degenerate direction, so the effect's
+    # design variance is huge. The explicit inverse of D'D is unreliable there (once negative,
+    # which passed the extrapolation rule); the value must equal exact rational arithmetic.
+    from stratagap.estimation._within_strata import EXTRAPOLATION_RATIO, _design_variance
+
+    rng = np.random.default_rng(31)
+    n1, n0 = 150, 60
+    t = np.r_[np.ones(n1), np.zeros(n0)]
+    z1 = rng.normal(size=n1 + n0)
+    z2 = np.where(t == 1, rng.normal(1.0, 1.0, n1 + n0), z1 + 1e-5 * rng.normal(size=n1 + n0))
+    Z = np.column_stack([z1, z2])
+    Z = Z - Z[t == 1].mean(axis=0)
+    D = np.column_stack([np.ones(n1 + n0), t, Z, t[:, None] * Z])
+    assert np.linalg.cond(D) > 1e5
+    exact = _exact_inverse_tt(D)
+    assert _design_variance(D) == pytest.approx(exact, rel=1e-7)
+    assert _design_variance(D[:, :4]) == pytest.approx(_exact_inverse_tt(D[:, :4]), rel=1e-9)
+    assert exact / _exact_inverse_tt(D[:, :4]) > EXTRAPOLATION_RATIO  # refused, as it should be
 
 
 def test_matched_pairs_use_between_pair_variance():

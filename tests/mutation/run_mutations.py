@@ -144,6 +144,18 @@ MUTATIONS = [
              "src/stratagap/estimation/_within_strata.py",
              "EXTRAPOLATION_RATIO = 4.0", "EXTRAPOLATION_RATIO = float('inf')",
              ("tests/estimation/test_effects.py",)),
+    Mutation("interactions_all_or_nothing", "when the full interacted set fails, the stratum "
+             "goes straight to main effects instead of giving up interactions column by column",
+             "src/stratagap/estimation/_within_strata.py",
+             "for m in range(len(order), 0, -1):",
+             "for m in range(len(order), len(order) - 1, -1):",
+             ("tests/estimation/test_effects.py",)),
+    Mutation("design_variance_by_inverse", "the extrapolation rule reads [(D'D)^-1]_tt from an "
+             "explicit inverse (inaccurate, even negative, on nearly collinear designs)",
+             "src/stratagap/estimation/_within_strata.py",
+             "return 1.0 / rss if rss > 1e-12 * float(D[:, 1] @ D[:, 1]) else np.inf",
+             "return float(np.linalg.inv(D.T @ D)[1, 1])",
+             ("tests/estimation/test_effects.py",)),
 ]
 
 

@@ -12,10 +12,12 @@ used and why. The model ladder, tried in order until one is estimable:
    and no leverage reaches 1. A column that one group cannot estimate (constant, or constant
    but for one unit, within that group; or whose interaction is a linear combination of the
    columns before it) enters as a main effect only, its slope shared by the groups: the model
-   is then ``partial interactions`` and the shared columns are recorded. Interactions give way
-   to main effects when the effect's design variance ``[(D'D)^-1]_tt`` exceeds
+   is then ``partial interactions`` and the shared columns are recorded. An interacted design
+   is refused when the effect's design variance ``[(D'D)^-1]_tt`` exceeds
    :data:`EXTRAPOLATION_RATIO` times that under main effects (a group-specific fit
-   extrapolating to the other group's covariates); the rule uses the design only;
+   extrapolating to the other group's covariates); the rule uses the design only. A refused,
+   rank-deficient or leverage-1 interacted set gives way column by column from the last
+   covariate: the longest passing prefix of the interacted columns is used;
 3. ``main effects``: ``y ~ 1 + t + Xc`` under the same rank and leverage checks;
 4. ``difference of means`` with the Neyman variance ``s1^2/n1 + s0^2/n0`` (Imbens & Rubin 2015,
    ch. 6); with a group of one unit its variance comes from the pooled within-stratum variance.
@@ -210,11 +212,19 @@ def fit_stratum(y, t, X, *, estimand: str, min_extra: int, names, n_linear=None)
 
 def _design_variance(D: np.ndarray) -> float:
     """``[(D'D)^-1]_tt`` of the exposure column (column 1): the effect's variance per unit of
-    residual variance, from the design alone (no outcome enters the model choice)."""
-    try:
-        return float(np.linalg.inv(D.T @ D)[1, 1])
-    except np.linalg.LinAlgError:
-        return np.inf
+    residual variance, from the design alone (no outcome enters the model choice).
+
+    Computed as ``1 / RSS`` of the exposure regressed on the other columns (Frisch-Waugh-Lovell)
+    by least squares, not by inverting ``D'D``. Why: on a nearly collinear interacted design
+    (a spline column almost linear on the reference units of an extreme stratum, condition
+    number 2e8) the explicit inverse returned a negative ``[(D'D)^-1]_tt``, which passed the
+    extrapolation rule and let through a stratum estimate of -1,226 (truth about 2).
+    """
+    others = np.delete(D, 1, axis=1)
+    coef = np.linalg.lstsq(others, D[:, 1], rcond=None)[0]
+    resid = D[:, 1] - others @ coef
+    rss = float(resid @ resid)
+    return 1.0 / rss if rss > 1e-12 * float(D[:, 1] @ D[:, 1]) else np.inf
 
 
 def _covariate_order(columns):
@@ -237,7 +247,8 @@ def _interacted_columns(Z: np.ndarray, tf: np.ndarray, columns, limit=None):
     only: the slope is shared by the groups, as it must be when one group cannot estimate it.
     ``limit`` keeps the first ``limit`` of them, covariate by covariate in the order of the
     covariates (a covariate's linear and spline columns together: its curvature in the effect
-    is interacted before the next covariate's slope), the overfitting guard.
+    is interacted before the next covariate's slope), the overfitting guard. The indices come
+    in that order, so a prefix of them is the model with the later covariates' slopes shared.
     """
     n = Z.shape[0]
     candidates = []
@@ -259,44 +270,74 @@ def _interacted_columns(Z: np.ndarray, tf: np.ndarray, columns, limit=None):
     start = 2 + Z.shape[1]
     chosen = {candidates[i - start] for i in kept if i >= start}
     chosen = [j for j in _covariate_order(columns) if j in chosen]
-    return sorted(chosen if limit is None else chosen[:max(int(limit), 0)])
+    return chosen if limit is None else chosen[:max(int(limit), 0)]
+
+
+def _fit_record(beta, cov, model, notes, columns, inter):
+    """The dict :func:`fit_stratum` returns, from an HC2 fit whose first columns are (1, t)."""
+    name = model
+    notes = list(notes)
+    if model == "interactions" and len(inter) < len(columns):
+        name = "partial interactions"
+        shared = [columns[j] for j in range(len(columns)) if j not in inter]
+        notes.append("main effect only (slope shared by the groups): " + ", ".join(shared))
+    return {"a": float(beta[0]), "tau": float(beta[1]), "cov": cov[:2, :2], "model": name,
+            "reason": "; ".join(notes) or "all checks passed", "columns": columns,
+            "interacted": [columns[j] for j in sorted(inter)]}
+
+
+def _interacted_fit(y, tf, Z, inter, check_extrapolation):
+    """``(beta, cov, None)`` of ``[1, t, Z, t Z[:, inter]]``, or ``(None, None, why)`` when the
+    extrapolation rule refuses the design or HC2 OLS cannot fit it."""
+    n = len(y)
+    main = np.column_stack([np.ones(n), tf, Z])
+    D = np.column_stack([main, tf[:, None] * Z[:, inter]])
+    if check_extrapolation:
+        ratio = _design_variance(D) / _design_variance(main)
+        if ratio > EXTRAPOLATION_RATIO:
+            return None, None, (f"the effect's design variance is {ratio:.3g} times that of main "
+                                f"effects (> {EXTRAPOLATION_RATIO:g}: the group-specific fits "
+                                "extrapolate)")
+    return hc2_ols(D, y)
 
 
 def _first_estimable(models, y, tf, Z, notes, columns, limit=None):
     """The first of ``models`` ("interactions", "main effects") that HC2 OLS can estimate.
 
-    "interactions" interacts the columns of :func:`_interacted_columns` (at most ``limit``);
-    when some columns enter as main effects only, the model is "partial interactions" and the
+    "interactions" interacts the columns of :func:`_interacted_columns` (at most ``limit``, in
+    covariate order). When the full set fails (rank, leverage 1, or the extrapolation rule when
+    main effects are the next rung), interactions give way column by column from the last
+    covariate: the longest prefix that passes is used. Why: one extreme column (a spline
+    column of the last covariate, thin on the reference units of an extreme ATT stratum) used
+    to send the whole stratum to main effects, whose exposure coefficient weights the effect by
+    the within-stratum variance of the exposure, not by the target units (bias -0.35 there).
+    When some columns enter as main effects only, the model is "partial interactions" and the
     note names them. Each failure is added to ``notes``; None when none is estimable.
     """
     n = len(y)
     for model in models:
-        inter = _interacted_columns(Z, tf, columns, limit) if model == "interactions" else []
-        if model == "interactions" and not inter:
+        if model == "main effects":
+            beta, cov, why = hc2_ols(np.column_stack([np.ones(n), tf, Z]), y)
+            if beta is not None:
+                return _fit_record(beta, cov, model, notes, columns, [])
+            notes.append(f"{model}: {why}")
+            continue
+        order = _interacted_columns(Z, tf, columns, limit)
+        if not order:
             notes.append("interactions: no column varies within each group")
             continue
-        cols = [np.ones(n), tf, Z] + ([tf[:, None] * Z[:, inter]] if inter else [])
-        if inter and "main effects" in models:
-            ratio = _design_variance(np.column_stack(cols)) / _design_variance(
-                np.column_stack(cols[:3]))
-            if ratio > EXTRAPOLATION_RATIO:
-                notes.append(f"interactions: the effect's design variance is {ratio:.3g} times "
-                             f"that of main effects (> {EXTRAPOLATION_RATIO:g}: the "
-                             "group-specific fits extrapolate)")
-                continue
-        beta, cov, why = hc2_ols(np.column_stack(cols), y)
-        if beta is not None:
-            name = model
-            fit_notes = list(notes)
-            if model == "interactions" and len(inter) < Z.shape[1]:
-                name = "partial interactions"
-                shared = [columns[j] for j in range(Z.shape[1]) if j not in inter]
-                fit_notes.append("main effect only (slope shared by the groups): "
-                                 + ", ".join(shared))
-            return {"a": float(beta[0]), "tau": float(beta[1]), "cov": cov[:2, :2],
-                    "model": name, "reason": "; ".join(fit_notes) or "all checks passed",
-                    "columns": columns, "interacted": [columns[j] for j in inter]}
-        notes.append(f"{model}: {why}")
+        check = "main effects" in models
+        first_failure = None
+        for m in range(len(order), 0, -1):
+            beta, cov, why = _interacted_fit(y, tf, Z, order[:m], check)
+            if beta is not None:
+                fit_notes = list(notes)
+                if m < len(order):
+                    fit_notes.append(f"interactions of {columns[order[m]]} and later columns "
+                                     f"given up ({first_failure})")
+                return _fit_record(beta, cov, model, fit_notes, columns, order[:m])
+            first_failure = first_failure or why
+        notes.append(f"interactions: {first_failure}")
     return None
 
 
