@@ -754,6 +754,50 @@ def test_spline_ladder_guard_of_ten_units_per_column():
     assert same.estimate == base.estimate
 
 
+def test_spline_columns_give_way_before_linear_terms_when_a_unit_sits_alone():
+    # One exposed unit at x = -3.3, every other unit of the stratum in [0.6, 3]: x's spline
+    # columns fit that unit alone (leverage 1) in every spline design, interacted or not.
+    # Spline columns give way from the last covariate's last one until the design is
+    # estimable; x keeps its first spline column, and the stratum is not sent to linear terms
+    # in every covariate. Knots by the package's rule on a pooled N(0, 1) sample (the analysed
+    # sample is wider than one stratum). Reference: statsmodels OLS with HC2 on the design
+    # kept, centred at the exposed means (ATT).
+    import statsmodels.api as sm
+
+    from stratagap.data._splines import choose_knots, nonlinear_columns
+
+    rng = np.random.default_rng(41)
+    knots, _ = choose_knots(rng.normal(size=2000))
+    u_knots, _ = choose_knots(rng.random(2000))
+    assert len(knots) == 5 and len(u_knots) == 5
+    n1, n0 = 200, 60
+    n = n1 + n0
+    x = rng.uniform(0.6, 3.0, n)
+    x[0] = -3.3
+    u = rng.random(n)
+    t = np.r_[np.ones(n1), np.zeros(n0)].astype(np.int8)
+    X = np.column_stack([x, u, nonlinear_columns(x, knots), nonlinear_columns(u, u_knots)])
+    names = ["x", "u"] + [f"x: spline {j}" for j in (1, 2, 3)] + [f"u: spline {j}" for j in (1, 2, 3)]
+    y = x + x ** 2 + u + t * (1 + 0.5 * x ** 2) + rng.normal(size=n)
+    main = np.column_stack([np.ones(n), t, X])
+    q, r = np.linalg.qr(main)
+    keep = np.abs(np.diag(r)) > 1e-9 * np.abs(np.diag(r)).max()
+    leverage = (np.linalg.qr(main[:, keep])[0] ** 2).sum(axis=1)
+    assert leverage[0] > 1 - 1e-9  # the unit alone has leverage 1 even under main effects
+    res = effects.stratified_regression(y, t, X, np.zeros(n, np.int64), estimand="att",
+                                        n_linear=2, names=names)
+    row = res.per_stratum[0]
+    assert row["model"] == "interactions"
+    assert row["covariates"] == ["x", "u", "x: spline 1"] == row["interacted"]
+    assert "spline columns given up: x: spline 2, u: spline 1, u: spline 2, u: spline 3" \
+        in row["reason"]
+    Xk = X[:, [0, 1, 2]]
+    Xc = Xk - Xk[t == 1].mean(axis=0)
+    ref = sm.OLS(y, np.column_stack([np.ones(n), t, Xc, t[:, None] * Xc])).fit(cov_type="HC2")
+    assert row["estimate"] == pytest.approx(ref.params[1], rel=1e-9)
+    assert row["se"] == pytest.approx(ref.bse[1], rel=1e-8)
+
+
 def test_spline_of_a_covariate_with_few_values_in_a_group_is_dropped_to_linear():
     """A cluster-level covariate (six values per group) keeps only its linear column; the
     other covariate keeps its spline, and the fit equals the same model built by hand."""

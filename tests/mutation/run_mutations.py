@@ -156,6 +156,12 @@ MUTATIONS = [
              "return 1.0 / rss if rss > 1e-12 * float(D[:, 1] @ D[:, 1]) else np.inf",
              "return float(np.linalg.inv(D.T @ D)[1, 1])",
              ("tests/estimation/test_effects.py",)),
+    Mutation("splines_all_or_nothing", "a spline design that no rung can fit sends the stratum "
+             "to linear terms in every covariate instead of giving up spline columns one by one",
+             "src/stratagap/estimation/_within_strata.py",
+             "    for m in range(1, len(spline)):",
+             "    for m in range(len(spline), len(spline)):",
+             ("tests/estimation/test_effects.py",)),
 ]
 
 

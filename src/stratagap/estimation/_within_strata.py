@@ -199,6 +199,8 @@ def fit_stratum(y, t, X, *, estimand: str, min_extra: int, names, n_linear=None)
     elif p:
         notes.append(f"splines need >= {k * p} units ({k} per column, {p} columns); found {n}")
     fit = _first_estimable(tried, y, tf, Z, notes, [names[j] for j in keep], limit=q)
+    if fit is None:
+        fit = _splines_give_way(tried, y, tf, Z, notes, [names[j] for j in keep], limit=q)
     if fit is not None:
         return fit
     fit = _fit_ladder(y, t, X[:, :n_linear], estimand=estimand, min_extra=min_extra,
@@ -208,6 +210,27 @@ def fit_stratum(y, t, X, *, estimand: str, min_extra: int, names, n_linear=None)
     fit["reason"] = "; ".join(notes + ([] if fit["reason"] == "all checks passed"
                                        else [fit["reason"]]))
     return fit
+
+
+def _splines_give_way(models, y, tf, Z, notes, columns, limit):
+    """The spline ladder again with spline columns given up one by one from the last covariate's
+    last one (linear columns always kept); None when only the linear columns would be left.
+
+    Why: a unit alone in its range of a covariate within the stratum (an exposed unit at
+    x = -3.3 among units above 0.57 in an extreme stratum) gets leverage 1 from that
+    covariate's spline columns in every design, and the stratum used to fall to linear terms in
+    every covariate (bias +0.33 there, where the confounder is quadratic).
+    """
+    spline = [j for j in reversed(_covariate_order(columns)) if ": spline" in columns[j]]
+    for m in range(1, len(spline)):
+        keep = [j for j in range(len(columns)) if j not in spline[:m]]
+        given_up = ", ".join(columns[j] for j in sorted(spline[:m]))
+        fit = _first_estimable(models, y, tf, Z[:, keep],
+                               notes + [f"spline columns given up: {given_up}"],
+                               [columns[j] for j in keep], limit)
+        if fit is not None:
+            return fit
+    return None
 
 
 def _design_variance(D: np.ndarray) -> float:
