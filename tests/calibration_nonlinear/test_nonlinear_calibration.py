@@ -13,8 +13,8 @@ rejects in a cell more than ``binom.isf(0.001, M, 0.05)`` = 14 of 120 with proba
 reject 95-100 % of these datasets at n = 5,000 (docs/validation.md), so a default that
 reverted to linear terms fails every cell. The coverage floor for a 95 % CI over M datasets is
 ``binom.ppf(0.001, M, 0.95)`` = 106 of 120 (88.3 %), under an effect quadratic in a
-confounder (ATE; the ATT cell of the full battery is still below the issue's 93 %, see
-docs/validation.md).
+confounder (ATE); for the ATT cell (default terms only) the floor is sized at the issue's 93 %:
+``binom.ppf(0.001, M, 0.93)`` = 102 of 120.
 """
 
 from __future__ import annotations
@@ -83,3 +83,17 @@ def test_headline_ci_coverage_under_heterogeneous_effect(coverage_cell):
     cover = coverage_cell["spline"]["coverage"]
     print(f"\n[nonlinear calibration] coverage {round(cover * M)} of {M}")
     assert round(cover * M) >= stats.binom.ppf(TAIL, M, 0.95)
+
+
+def test_att_headline_ci_coverage_under_heterogeneous_effect():
+    # The ATT cell, default terms only. Floor sized for M at the issue's 93 %: an interval that
+    # covers 93 % of the time covers fewer than binom.ppf(0.001, 120, 0.93) of 120 with
+    # probability below 0.1 %. The full cell (1,000 datasets of the same seeds) is in
+    # docs/validation.md; before spline columns could give way it covered 92.6 %, before the
+    # column-by-column interactions 89.2 %. Its first 120 datasets cover 110 (91.7 %).
+    cell = run_cell("heterogeneous_overlap", "att", N, M, workers=min(2, os.cpu_count() or 1),
+                    terms=("spline",))
+    cover, bias = cell["spline"]["coverage"], cell["spline"]["bias"]
+    print(f"\n[nonlinear calibration] ATT coverage {round(cover * M)} of {M} (bias {bias:.4f})")
+    assert round(cover * M) >= stats.binom.ppf(TAIL, M, 0.93)
+    assert abs(bias) < 0.03  # SD of the ATT estimate about 0.065: 0.065 / sqrt(120) = 0.006

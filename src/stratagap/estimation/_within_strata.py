@@ -165,8 +165,10 @@ def fit_stratum(y, t, X, *, estimand: str, min_extra: int, names, n_linear=None)
     interacted columns, taken covariate by covariate in design order (a covariate's linear and
     spline columns together), the rest shared by the groups ("partial interactions" when
     ``q < p``), when the stratum holds ``k (p + min(p, q))`` units; else main-effect splines
-    when it holds ``k p``; else the linear ladder (interactions, main effects) on the linear
-    columns; else the difference of means.
+    when it holds ``k p``; else, when none of these is estimable, the same rungs with spline
+    columns given up one by one from the last covariate's last (:func:`_splines_give_way`);
+    else the linear ladder (interactions, main effects) on the linear columns; else the
+    difference of means.
     """
     n_linear = X.shape[1] if n_linear is None else int(n_linear)
     thin_notes = []
