@@ -313,7 +313,8 @@ def test_design_variance_is_exact_on_a_nearly_collinear_design():
     # the reference fit must extrapolate along the near-degenerate direction, so the effect's
     # design variance is huge. The explicit inverse of D'D is unreliable there (once negative,
     # which passed the extrapolation rule); the value must equal exact rational arithmetic.
-    from stratagap.estimation._within_strata import EXTRAPOLATION_RATIO, _design_variance
+    from stratagap.estimation._within_strata import (EXTRAPOLATION_RATIO, GRAM_CONDITION,
+                                                     _design_variances)
 
     rng = np.random.default_rng(31)
     n1, n0 = 150, 60
@@ -325,8 +326,14 @@ def test_design_variance_is_exact_on_a_nearly_collinear_design():
     D = np.column_stack([np.ones(n1 + n0), t, Z, t[:, None] * Z])
     assert np.linalg.cond(D) > 1e5
     exact = _exact_inverse_tt(D)
-    assert _design_variance(D) == pytest.approx(exact, rel=1e-7)
-    assert _design_variance(D[:, :4]) == pytest.approx(_exact_inverse_tt(D[:, :4]), rel=1e-9)
+    assert np.linalg.cond(D.T @ D) > GRAM_CONDITION  # the QR path
+    full, shared = _design_variances(D, 4)
+    assert full == pytest.approx(exact, rel=1e-7)
+    assert shared == pytest.approx(_exact_inverse_tt(D[:, :4]), rel=1e-9)
+    # a well-conditioned design takes the Gram path: the same exact values
+    assert np.linalg.cond(D[:, :4].T @ D[:, :4]) < GRAM_CONDITION
+    assert _design_variances(D[:, :4], 3) == pytest.approx(
+        (_exact_inverse_tt(D[:, :4]), _exact_inverse_tt(D[:, :3])), rel=1e-9)
     assert exact / _exact_inverse_tt(D[:, :4]) > EXTRAPOLATION_RATIO  # refused, as it should be
 
 

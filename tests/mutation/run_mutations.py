@@ -153,8 +153,9 @@ MUTATIONS = [
     Mutation("design_variance_by_inverse", "the extrapolation rule reads [(D'D)^-1]_tt from an "
              "explicit inverse (inaccurate, even negative, on nearly collinear designs)",
              "src/stratagap/estimation/_within_strata.py",
-             "return 1.0 / rss if rss > 1e-12 * float(D[:, 1] @ D[:, 1]) else np.inf",
-             "return float(np.linalg.inv(D.T @ D)[1, 1])",
+             "    return tuple(variances)",
+             "    return tuple(float(np.linalg.inv(D[:, :k].T @ D[:, :k])[1, 1])\n"
+             "                 for k in (D.shape[1], k_main))",
              ("tests/estimation/test_effects.py",)),
     Mutation("splines_all_or_nothing", "a spline design that no rung can fit sends the stratum "
              "to linear terms in every covariate instead of giving up spline columns one by one",
