@@ -250,8 +250,9 @@ def _design_variances(D: np.ndarray, k_main: int):
     ``R' x = e_t``. Why not always the inverse of ``D'D``: on a nearly collinear interacted
     design (a spline column almost linear on the reference units of an extreme stratum,
     condition number 2e8) it returned a negative value, which passed the extrapolation rule and
-    let through a stratum estimate of -1,226 (truth about 2). Why not always the QR: at 20,000
-    rows x 130 columns it costs 40 times the Gram matrix. A singular leading block gives inf.
+    let through a stratum estimate of -1,226 (truth about 2). Why not always the QR: at 200,000
+    rows x 40 columns it took 0.45 s against 0.01 s for the Gram matrix and its inverse (one
+    thread). A singular leading block gives inf.
     """
     G = D.T @ D
     if np.linalg.cond(G) < GRAM_CONDITION:
