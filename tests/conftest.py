@@ -3,8 +3,8 @@
 import os
 
 # One BLAS thread per process. Why: pytest-xdist runs one worker per core (2 in CI), and a BLAS
-# pool of 2 threads in each worker oversubscribes the cores (seen: CI at 45 min against 22 min
-# serial). Set before numpy loads its BLAS; the workers and the CLI subprocesses inherit it.
+# pool of 2 threads in each worker oversubscribes the cores (seen: CI at 45 min, 11 min with
+# this setting). Set before numpy loads its BLAS; the workers and the CLI subprocesses inherit it.
 for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 
@@ -13,7 +13,7 @@ from threadpoolctl import threadpool_limits  # noqa: E402
 
 threadpool_limits(1)  # numpy may be loaded already (by a plugin): limit its pool as well
 
-from stratagap.demo import DEMO_COVARIATES, make_shift_work_data
+from stratagap.demo import DEMO_COVARIATES, make_shift_work_data  # noqa: E402
 
 COVARIATES = list(DEMO_COVARIATES)
 
